@@ -1,0 +1,212 @@
+//! Diversifiers: the numeric core that turns a validated slate into an ordered selection.
+//!
+//! Every algorithm implements [`Diversifier`] and is listed once in the `diversifiers!` registry
+//! below, which declares its module and makes it findable by name ([`by_name`], [`names`]).
+//! Adding one is a new file plus one registry line.
+//!
+//! Contract shared by all of them (tests in `tests/kernels.rs` hold every one to it):
+//! - output: at most `min(k, N)` distinct candidate indices in slate order (exactly that many
+//!   unless a per-category cap leaves too few eligible candidates);
+//! - `lambda = 0` returns the relevance order: top-k by raw score, ties to the lower index;
+//! - ties anywhere go to the lower input index, so the output is deterministic;
+//! - a per-category cap ([`Params::max_per_category`]) is a hard constraint for every algorithm.
+//!
+//! This module knows nothing of HTTP, async runtimes or metrics: kernels are synchronous and
+//! pure, and reuse a caller-owned [`Workspace`] so the per-step loops never allocate.
+
+pub mod reference;
+mod similarity;
+
+pub use dpp::EPSILON;
+
+use crate::model::{Params, RerankInput, Selection};
+
+/// Why a kernel could not run on an otherwise valid slate.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum KernelError {
+    /// The algorithm compares embeddings and the slate has none.
+    #[error("{algorithm} needs an embedding on every candidate")]
+    EmbeddingsRequired {
+        /// The algorithm's registry name.
+        algorithm: &'static str,
+    },
+}
+
+/// A re-ranking algorithm.
+///
+/// Implementations are stateless values; all scratch space lives in the [`Workspace`].
+pub trait Diversifier: Send + Sync + std::fmt::Debug {
+    /// Registry name, as used on the wire and in config (`"dpp"`).
+    fn name(&self) -> &'static str;
+
+    /// True when the algorithm compares embeddings (validation then requires them).
+    fn needs_embeddings(&self) -> bool;
+
+    /// Chooses the slate. Assumes `input` and `params` were validated by their constructors.
+    ///
+    /// # Errors
+    /// [`KernelError::EmbeddingsRequired`] when the algorithm needs embeddings and `input` has none.
+    fn select(
+        &self,
+        input: &RerankInput,
+        params: &Params,
+        ws: &mut Workspace,
+    ) -> Result<Selection, KernelError>;
+}
+
+/// Declares each diversifier's module and lists it in the registry, in wire-name order of intent.
+macro_rules! diversifiers {
+    ($($module:ident :: $ty:ident),+ $(,)?) => {
+        $(mod $module; pub use $module::$ty;)+
+        static REGISTRY: &[&dyn Diversifier] = &[$(&$module::$ty),+];
+    };
+}
+
+diversifiers! {
+    relevance::Relevance,
+    mmr::Mmr,
+    dpp::Dpp,
+    quota::Quota,
+}
+
+/// Looks a diversifier up by its registry name.
+#[must_use]
+pub fn by_name(name: &str) -> Option<&'static dyn Diversifier> {
+    REGISTRY.iter().copied().find(|d| d.name() == name)
+}
+
+/// All registry names, in registry order.
+pub fn names() -> impl Iterator<Item = &'static str> {
+    REGISTRY.iter().map(|d| d.name())
+}
+
+/// Reusable scratch space for the kernels.
+///
+/// Keep one per worker thread and pass it to every call: buffers grow to the largest slate seen
+/// and are then reused, so steady-state calls allocate only their output.
+#[derive(Debug, Default, Clone)]
+pub struct Workspace {
+    /// Whether each candidate is already in the slate.
+    taken: Vec<bool>,
+    /// Candidate indices in some order (relevance order, per-group queues).
+    order: Vec<usize>,
+    /// Similarity row `S_{·,j}` of the item just picked.
+    sims: Vec<f64>,
+    /// The picked item's embedding widened to f64.
+    query: Vec<f64>,
+    /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
+    running: Vec<f64>,
+    /// DPP Cholesky factor rows, one row of N per pick.
+    factor: Vec<f64>,
+    /// Items taken per group, for caps and quotas.
+    group_taken: Vec<usize>,
+}
+
+impl Workspace {
+    /// An empty workspace; buffers grow on first use.
+    #[must_use]
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Clears per-call state for a slate of `n` candidates in `groups` groups.
+    fn reset(&mut self, n: usize, groups: usize) {
+        self.taken.clear();
+        self.taken.resize(n, false);
+        self.group_taken.clear();
+        self.group_taken.resize(groups, 0);
+    }
+}
+
+/// Per-category cap bookkeeping shared by every kernel.
+#[inline]
+fn allowed(input: &RerankInput, params: &Params, group_taken: &[usize], i: usize) -> bool {
+    match params.max_per_category() {
+        None => true,
+        Some(cap) => group_taken[input.groups()[i] as usize] < cap,
+    }
+}
+
+/// The strict total order "higher raw score first, then lower index" used for every tie-break.
+#[inline]
+fn by_score(scores: &[f64], a: usize, b: usize) -> std::cmp::Ordering {
+    scores[b].total_cmp(&scores[a]).then(a.cmp(&b))
+}
+
+/// Writes the first `m` candidates in relevance order into `out`.
+///
+/// # Complexity
+/// O(N + m log m) with a selection step, O(N log N) when `m` is close to N.
+fn relevance_prefix(scores: &[f64], m: usize, out: &mut Vec<usize>) {
+    let n = scores.len();
+    out.clear();
+    out.extend(0..n);
+    let m = m.min(n);
+    if m == 0 {
+        out.clear();
+        return;
+    }
+    if m < n {
+        out.select_nth_unstable_by(m - 1, |&a, &b| by_score(scores, a, b));
+        out.truncate(m);
+    }
+    out.sort_unstable_by(|&a, &b| by_score(scores, a, b));
+}
+
+/// Appends untaken, allowed candidates to `sel` in relevance order until it has `m` items.
+///
+/// Used for `lambda = 0`, for `relevance` itself and to fill slots after a kernel is exhausted.
+fn fill_by_score(input: &RerankInput, params: &Params, ws: &mut Workspace, m: usize, sel: &mut Selection) {
+    let missing = m.saturating_sub(sel.indices.len());
+    if missing == 0 {
+        return;
+    }
+    // Without caps the top (picked + missing) by score always hold `missing` untaken items.
+    let depth = match params.max_per_category() {
+        None => sel.indices.len() + missing,
+        Some(_) => input.len(),
+    };
+    let mut order = std::mem::take(&mut ws.order);
+    relevance_prefix(input.scores(), depth, &mut order);
+    for &i in &order {
+        if sel.indices.len() == m {
+            break;
+        }
+        if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
+            continue;
+        }
+        take(input, ws, sel, i, input.normalized()[i]);
+    }
+    ws.order = order;
+}
+
+/// Records pick `i` with its deciding `gain`.
+#[inline]
+fn take(input: &RerankInput, ws: &mut Workspace, sel: &mut Selection, i: usize, gain: f64) {
+    debug_assert!(!ws.taken[i], "candidate {i} picked twice");
+    ws.taken[i] = true;
+    ws.group_taken[input.groups()[i] as usize] += 1;
+    sel.indices.push(i);
+    sel.gains.push(gain);
+}
+
+/// The relevance order under `params`: what every kernel returns at `lambda = 0`.
+fn relevance_selection(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection {
+    let m = params.k().min(input.len());
+    ws.reset(input.len(), input.group_count());
+    let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
+    fill_by_score(input, params, ws, m, &mut sel);
+    sel
+}
+
+/// Runs `algorithm` with a fresh workspace: convenient for one-off calls and tests.
+///
+/// # Errors
+/// As [`Diversifier::select`].
+pub fn select_once(
+    algorithm: &dyn Diversifier,
+    input: &RerankInput,
+    params: &Params,
+) -> Result<Selection, KernelError> {
+    algorithm.select(input, params, &mut Workspace::new())
+}

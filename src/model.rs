@@ -1,0 +1,525 @@
+//! Validated input and output of one re-ranking call.
+//!
+//! Everything the kernels trust is built here, once: [`RerankInput`] (the slate: ids, scores,
+//! categories, unit embeddings) and [`Params`] (k, lambda, optional per-category cap). Their fields
+//! are private and their constructors check every precondition the kernels rely on, so the
+//! `diversify` module never re-checks. Wire formats (JSON, base64) live in `http::wire`; this module
+//! only sees plain Rust values and reports failures as [`ValidationError`], which names the
+//! candidate and the field so the HTTP layer can build a JSON path.
+
+use std::collections::HashMap;
+
+/// Hard limits on one slate, enforced by [`RerankInput::new`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Limits {
+    /// Most candidates accepted in one slate.
+    pub max_candidates: usize,
+    /// Largest embedding dimension accepted.
+    pub max_dim: usize,
+    /// Largest `k` accepted.
+    pub max_k: usize,
+}
+
+impl Default for Limits {
+    fn default() -> Self {
+        Self { max_candidates: 10_000, max_dim: 4_096, max_k: 1_000 }
+    }
+}
+
+/// How raw scores are mapped to the normalised scores `s_i` that the kernels weigh.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum ScoreTransform {
+    /// `s_i = (x_i − min) / (max − min)` within the slate; all equal → every `s_i = 1`.
+    #[default]
+    MinMax,
+    /// `s_i = x_i` as given.
+    None,
+}
+
+impl ScoreTransform {
+    /// The wire name of the transform.
+    #[must_use]
+    pub fn name(self) -> &'static str {
+        match self {
+            Self::MinMax => "minmax",
+            Self::None => "none",
+        }
+    }
+
+    /// Parses a wire name (`"minmax"` or `"none"`).
+    #[must_use]
+    pub fn from_name(name: &str) -> Option<Self> {
+        match name {
+            "minmax" => Some(Self::MinMax),
+            "none" => Some(Self::None),
+            _ => None,
+        }
+    }
+}
+
+/// One candidate as the caller sent it, before validation.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CandidateInput {
+    /// Caller's item id; unique within the slate.
+    pub id: String,
+    /// Caller's relevance score; must be finite.
+    pub score: f64,
+    /// Optional category label.
+    pub category: Option<String>,
+    /// Optional embedding; when any candidate has one, all must, with one dimension.
+    pub embedding: Option<Vec<f32>>,
+}
+
+/// The field of a candidate that failed validation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Field {
+    /// `id`
+    Id,
+    /// `score`
+    Score,
+    /// `embedding` (or its base64 form)
+    Embedding,
+}
+
+impl Field {
+    /// The wire name of the field.
+    #[must_use]
+    pub fn name(self) -> &'static str {
+        match self {
+            Self::Id => "id",
+            Self::Score => "score",
+            Self::Embedding => "embedding",
+        }
+    }
+}
+
+/// Why a slate or its parameters were refused.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ValidationError {
+    /// More candidates than [`Limits::max_candidates`].
+    #[error("{got} candidates exceed the limit of {max}")]
+    TooManyCandidates {
+        /// Candidates sent.
+        got: usize,
+        /// The limit.
+        max: usize,
+    },
+    /// Two candidates share an id.
+    #[error("id {id:?} is used by candidates {first} and {index}")]
+    DuplicateId {
+        /// The repeated id.
+        id: String,
+        /// Index of the first candidate with this id.
+        first: usize,
+        /// Index of the repeat.
+        index: usize,
+    },
+    /// A score or embedding value is NaN or infinite.
+    #[error("candidate {index} has a non-finite {}", field.name())]
+    NonFinite {
+        /// Candidate index.
+        index: usize,
+        /// Which field.
+        field: Field,
+    },
+    /// Some candidates have embeddings and this one has none, or the algorithm needs them.
+    #[error("candidate {index} has no embedding, but {reason}")]
+    MissingEmbedding {
+        /// Candidate index.
+        index: usize,
+        /// Why one is needed.
+        reason: &'static str,
+    },
+    /// The embedding's length differs from the first candidate's.
+    #[error("candidate {index} has an embedding of dimension {got}, but candidate 0 set the dimension to {expected}")]
+    DimensionMismatch {
+        /// Candidate index.
+        index: usize,
+        /// Dimension of this embedding.
+        got: usize,
+        /// Dimension set by the first embedding.
+        expected: usize,
+    },
+    /// An embedding longer than [`Limits::max_dim`], or empty.
+    #[error("candidate {index} has an embedding of dimension {got}; allowed is 1..={max}")]
+    DimensionOutOfRange {
+        /// Candidate index.
+        index: usize,
+        /// Dimension sent.
+        got: usize,
+        /// The limit.
+        max: usize,
+    },
+    /// The embedding has zero (or subnormal-underflowing) norm, so cosine is undefined.
+    #[error("candidate {index} has an all-zero embedding; cosine similarity needs a non-zero vector")]
+    ZeroNorm {
+        /// Candidate index.
+        index: usize,
+    },
+    /// `k` outside `1..=max_k`.
+    #[error("k = {got} is outside 1..={max}")]
+    KOutOfRange {
+        /// k sent.
+        got: u64,
+        /// The limit.
+        max: usize,
+    },
+    /// `lambda` outside `[0, 1]` or not finite.
+    #[error("lambda = {got} is outside [0, 1]")]
+    LambdaOutOfRange {
+        /// lambda sent.
+        got: f64,
+    },
+}
+
+/// Row-major matrix of L2-normalised embeddings, one row per candidate.
+///
+/// Stored as `f32`: the kernels are bound by memory traffic over these rows, and `f32` halves it.
+/// Products are accumulated in `f64` where precision matters (see `diversify::similarity`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Embeddings {
+    dim: usize,
+    data: Vec<f32>,
+}
+
+impl Embeddings {
+    /// Embedding dimension d.
+    #[must_use]
+    pub fn dim(&self) -> usize {
+        self.dim
+    }
+
+    /// All rows, contiguous, `n × d`.
+    #[must_use]
+    pub fn as_slice(&self) -> &[f32] {
+        &self.data
+    }
+
+    /// Row `i` (unit norm up to f32 rounding).
+    ///
+    /// # Panics
+    /// If `i` is not a candidate index.
+    #[must_use]
+    pub fn row(&self, i: usize) -> &[f32] {
+        &self.data[i * self.dim..(i + 1) * self.dim]
+    }
+}
+
+/// A validated slate: what every diversifier takes.
+///
+/// # Invariants
+/// - ids are unique; scores are finite; `normalized` has one finite entry per candidate;
+/// - `groups[i] < group_names.len()`; equal categories (and all missing ones) share a group;
+///   groups are numbered in order of first appearance;
+/// - embeddings, if present, cover every candidate with one dimension in `1..=max_dim`, and each
+///   row has unit L2 norm (computed in f64, then rounded to f32).
+#[derive(Debug, Clone, PartialEq)]
+pub struct RerankInput {
+    ids: Vec<String>,
+    scores: Vec<f64>,
+    normalized: Vec<f64>,
+    groups: Vec<u32>,
+    group_names: Vec<Option<String>>,
+    embeddings: Option<Embeddings>,
+}
+
+impl RerankInput {
+    /// Validates candidates into a slate.
+    ///
+    /// `require_embeddings` is set by callers whose algorithm needs embeddings (MMR, DPP).
+    ///
+    /// # Errors
+    /// The first [`ValidationError`] found, scanning candidates in order.
+    pub fn new(
+        candidates: Vec<CandidateInput>,
+        transform: ScoreTransform,
+        require_embeddings: bool,
+        limits: &Limits,
+    ) -> Result<Self, ValidationError> {
+        let n = candidates.len();
+        if n > limits.max_candidates {
+            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
+        }
+        let any_embedding = candidates.iter().any(|c| c.embedding.is_some());
+        let dim = match candidates.first().map(|c| c.embedding.as_ref()) {
+            Some(Some(e)) => e.len(),
+            Some(None) if any_embedding || require_embeddings => {
+                let reason = if require_embeddings {
+                    "the chosen algorithm compares embeddings"
+                } else {
+                    "other candidates have one (send embeddings for all candidates or for none)"
+                };
+                return Err(ValidationError::MissingEmbedding { index: 0, reason });
+            }
+            _ => 0,
+        };
+        if any_embedding && (dim == 0 || dim > limits.max_dim) {
+            return Err(ValidationError::DimensionOutOfRange { index: 0, got: dim, max: limits.max_dim });
+        }
+
+        let mut ids = Vec::with_capacity(n);
+        let mut scores = Vec::with_capacity(n);
+        let mut groups = Vec::with_capacity(n);
+        let mut group_names: Vec<Option<String>> = Vec::new();
+        let mut group_of: HashMap<Option<String>, u32> = HashMap::new();
+        let mut first_index: HashMap<String, usize> = HashMap::with_capacity(n);
+        let mut data = Vec::with_capacity(if any_embedding { n * dim } else { 0 });
+
+        for (index, c) in candidates.into_iter().enumerate() {
+            if let Some(&first) = first_index.get(&c.id) {
+                return Err(ValidationError::DuplicateId { id: c.id, first, index });
+            }
+            if !c.score.is_finite() {
+                return Err(ValidationError::NonFinite { index, field: Field::Score });
+            }
+            match (any_embedding, c.embedding) {
+                (false, _) => {}
+                (true, None) => {
+                    return Err(ValidationError::MissingEmbedding {
+                        index,
+                        reason: "other candidates have one (send embeddings for all candidates or for none)",
+                    })
+                }
+                (true, Some(e)) => {
+                    if e.len() != dim {
+                        return Err(ValidationError::DimensionMismatch { index, got: e.len(), expected: dim });
+                    }
+                    push_unit_row(&e, index, &mut data)?;
+                }
+            }
+            let next = u32::try_from(group_names.len()).unwrap_or(u32::MAX);
+            let group = *group_of.entry(c.category.clone()).or_insert_with(|| {
+                group_names.push(c.category);
+                next
+            });
+            groups.push(group);
+            scores.push(c.score);
+            first_index.insert(c.id.clone(), index);
+            ids.push(c.id);
+        }
+
+        let normalized = normalize_scores(&scores, transform);
+        let embeddings = any_embedding.then_some(Embeddings { dim, data });
+        Ok(Self { ids, scores, normalized, groups, group_names, embeddings })
+    }
+
+    /// Number of candidates N.
+    #[must_use]
+    pub fn len(&self) -> usize {
+        self.ids.len()
+    }
+
+    /// True for an empty slate.
+    #[must_use]
+    pub fn is_empty(&self) -> bool {
+        self.ids.is_empty()
+    }
+
+    /// Candidate ids in input order.
+    #[must_use]
+    pub fn ids(&self) -> &[String] {
+        &self.ids
+    }
+
+    /// Raw scores as sent.
+    #[must_use]
+    pub fn scores(&self) -> &[f64] {
+        &self.scores
+    }
+
+    /// Normalised scores `s_i` (see [`ScoreTransform`]).
+    #[must_use]
+    pub fn normalized(&self) -> &[f64] {
+        &self.normalized
+    }
+
+    /// Group (category) id of every candidate.
+    #[must_use]
+    pub fn groups(&self) -> &[u32] {
+        &self.groups
+    }
+
+    /// Number of distinct groups; a missing category counts as one group.
+    #[must_use]
+    pub fn group_count(&self) -> usize {
+        self.group_names.len()
+    }
+
+    /// Category label of candidate `i`, if it had one.
+    ///
+    /// # Panics
+    /// If `i` is not a candidate index.
+    #[must_use]
+    pub fn category(&self, i: usize) -> Option<&str> {
+        self.group_names[self.groups[i] as usize].as_deref()
+    }
+
+    /// Unit embeddings, if the slate has them.
+    #[must_use]
+    pub fn embeddings(&self) -> Option<&Embeddings> {
+        self.embeddings.as_ref()
+    }
+}
+
+/// L2-normalises `e` in f64 and appends it to `data` as f32.
+fn push_unit_row(e: &[f32], index: usize, data: &mut Vec<f32>) -> Result<(), ValidationError> {
+    let mut norm2 = 0.0_f64;
+    for &x in e {
+        if !x.is_finite() {
+            return Err(ValidationError::NonFinite { index, field: Field::Embedding });
+        }
+        norm2 += f64::from(x) * f64::from(x);
+    }
+    // A norm this small would divide into infinities once rounded back to f32.
+    if norm2 < 1e-60 {
+        return Err(ValidationError::ZeroNorm { index });
+    }
+    let inv = 1.0 / norm2.sqrt();
+    data.extend(e.iter().map(|&x| (f64::from(x) * inv) as f32));
+    Ok(())
+}
+
+/// Applies `transform` to the slate's scores.
+fn normalize_scores(scores: &[f64], transform: ScoreTransform) -> Vec<f64> {
+    match transform {
+        ScoreTransform::None => scores.to_vec(),
+        ScoreTransform::MinMax => {
+            let (lo, hi) = scores
+                .iter()
+                .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &x| (lo.min(x), hi.max(x)));
+            let range = hi - lo;
+            // `range` can overflow to +inf for scores near ±f64::MAX; halve both sides then.
+            if range.is_finite() && range > 0.0 {
+                scores.iter().map(|&x| (x - lo) / range).collect()
+            } else if range > 0.0 {
+                scores.iter().map(|&x| (x / 2.0 - lo / 2.0) / (hi / 2.0 - lo / 2.0)).collect()
+            } else {
+                vec![1.0; scores.len()]
+            }
+        }
+    }
+}
+
+/// Per-call parameters, validated.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Params {
+    k: usize,
+    lambda: f64,
+    max_per_category: Option<usize>,
+}
+
+impl Params {
+    /// Checks `k` in `1..=limits.max_k` and `lambda` in `[0, 1]`.
+    ///
+    /// # Errors
+    /// [`ValidationError::KOutOfRange`] or [`ValidationError::LambdaOutOfRange`].
+    pub fn new(k: u64, lambda: f64, limits: &Limits) -> Result<Self, ValidationError> {
+        let k_ok = usize::try_from(k).ok().filter(|&k| (1..=limits.max_k).contains(&k));
+        let Some(k) = k_ok else {
+            return Err(ValidationError::KOutOfRange { got: k, max: limits.max_k });
+        };
+        if !(0.0..=1.0).contains(&lambda) {
+            return Err(ValidationError::LambdaOutOfRange { got: lambda });
+        }
+        // -0.0 is inside the range; store +0.0 so `lambda == 0` paths see one value.
+        Ok(Self { k, lambda: lambda + 0.0, max_per_category: None })
+    }
+
+    /// Adds a hard cap on items per category (`None` removes it). A cap of 0 is treated as none.
+    #[must_use]
+    pub fn with_max_per_category(mut self, cap: Option<usize>) -> Self {
+        self.max_per_category = cap.filter(|&c| c > 0);
+        self
+    }
+
+    /// Requested slate length (the output has `min(k, N)` items, fewer only under a category cap).
+    #[must_use]
+    pub fn k(&self) -> usize {
+        self.k
+    }
+
+    /// Diversity weight in `[0, 1]`; 0 is pure relevance.
+    #[must_use]
+    pub fn lambda(&self) -> f64 {
+        self.lambda
+    }
+
+    /// Hard cap on items per category, if any.
+    #[must_use]
+    pub fn max_per_category(&self) -> Option<usize> {
+        self.max_per_category
+    }
+}
+
+/// A chosen slate.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct Selection {
+    /// Candidate indices in slate order; no duplicates.
+    pub indices: Vec<usize>,
+    /// Per pick, the quantity that decided it: the DPP residual `d_j²`, the MMR objective, or the
+    /// normalised score for score-ordered picks.
+    pub gains: Vec<f64>,
+    /// Slot at which the kernel ran out of signal (DPP: numerical rank reached) and the rest was
+    /// filled by score; `None` when it never did.
+    pub exhausted_at: Option<usize>,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn cand(id: &str, score: f64, emb: Option<Vec<f32>>) -> CandidateInput {
+        CandidateInput { id: id.into(), score, category: None, embedding: emb }
+    }
+
+    #[test]
+    fn minmax_maps_to_unit_interval_and_equal_scores_to_one() {
+        assert_eq!(normalize_scores(&[2.0, 4.0, 3.0], ScoreTransform::MinMax), vec![0.0, 1.0, 0.5]);
+        assert_eq!(normalize_scores(&[7.0, 7.0], ScoreTransform::MinMax), vec![1.0, 1.0]);
+        let huge = normalize_scores(&[-f64::MAX, f64::MAX], ScoreTransform::MinMax);
+        assert_eq!(huge, vec![0.0, 1.0]);
+    }
+
+    #[test]
+    fn embeddings_are_unit_norm() {
+        let input = RerankInput::new(
+            vec![cand("a", 1.0, Some(vec![3.0, 4.0]))],
+            ScoreTransform::MinMax,
+            true,
+            &Limits::default(),
+        )
+        .unwrap();
+        let row = input.embeddings().unwrap().row(0);
+        assert!((row[0] - 0.6).abs() < 1e-7 && (row[1] - 0.8).abs() < 1e-7);
+    }
+
+    #[test]
+    fn rejects_each_bad_candidate_with_its_index() {
+        let l = Limits::default();
+        let t = ScoreTransform::MinMax;
+        let dup = vec![cand("a", 1.0, None), cand("a", 2.0, None)];
+        assert!(matches!(RerankInput::new(dup, t, false, &l), Err(ValidationError::DuplicateId { index: 1, .. })));
+        let nan = vec![cand("a", f64::NAN, None)];
+        assert!(matches!(RerankInput::new(nan, t, false, &l), Err(ValidationError::NonFinite { index: 0, .. })));
+        let zero = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, Some(vec![0.0]))];
+        assert_eq!(RerankInput::new(zero, t, false, &l), Err(ValidationError::ZeroNorm { index: 1 }));
+        let mixed = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, Some(vec![1.0, 2.0]))];
+        assert!(matches!(RerankInput::new(mixed, t, false, &l), Err(ValidationError::DimensionMismatch { index: 1, .. })));
+        let partial = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, None)];
+        assert!(matches!(RerankInput::new(partial, t, false, &l), Err(ValidationError::MissingEmbedding { index: 1, .. })));
+        let needed = vec![cand("a", 1.0, None)];
+        assert!(matches!(RerankInput::new(needed, t, true, &l), Err(ValidationError::MissingEmbedding { index: 0, .. })));
+        let inf = vec![cand("a", 1.0, Some(vec![f32::INFINITY]))];
+        assert!(matches!(RerankInput::new(inf, t, false, &l), Err(ValidationError::NonFinite { field: Field::Embedding, .. })));
+    }
+
+    #[test]
+    fn params_bounds() {
+        let l = Limits::default();
+        assert!(Params::new(0, 0.5, &l).is_err());
+        assert!(Params::new(1001, 0.5, &l).is_err());
+        assert!(Params::new(10, 1.0001, &l).is_err());
+        assert!(Params::new(10, f64::NAN, &l).is_err());
+        assert_eq!(Params::new(10, -0.0, &l).unwrap().lambda().to_bits(), 0.0_f64.to_bits());
+    }
+}
