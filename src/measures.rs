@@ -69,8 +69,7 @@ pub fn intra_list_distance(input: &RerankInput, slate: &[usize]) -> Option<f64> 
     let mut total = 0.0;
     for (a, &i) in slate.iter().enumerate() {
         for &j in &slate[a + 1..] {
-            let cos: f64 = emb.row(i).iter().zip(emb.row(j)).map(|(&x, &y)| f64::from(x) * f64::from(y)).sum();
-            total += 1.0 - cos;
+            total += 1.0 - emb.cosine(i, j);
         }
     }
     let pairs = (slate.len() * (slate.len() - 1) / 2) as f64;

@@ -175,11 +175,14 @@ pub enum ValidationError {
 /// Row-major matrix of L2-normalised embeddings, one row per candidate.
 ///
 /// Stored as `f32`: the kernels are bound by memory traffic over these rows, and `f32` halves it.
-/// Products are accumulated in `f64` where precision matters (see `diversify::similarity`).
+/// Rounding to f32 leaves each row's norm within ~1e-7 of 1, so the exact f64 inverse norm of every
+/// stored row is kept too: [`Embeddings::cosine`] is then the cosine of the stored rows to ~1e-16,
+/// with `cos(i, i) = 1`, and the similarity kernel is a Gram matrix of unit vectors (PSD).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Embeddings {
     dim: usize,
     data: Vec<f32>,
+    inv_norm: Vec<f64>,
 }
 
 impl Embeddings {
@@ -202,6 +205,22 @@ impl Embeddings {
     #[must_use]
     pub fn row(&self, i: usize) -> &[f32] {
         &self.data[i * self.dim..(i + 1) * self.dim]
+    }
+
+    /// `1 / ‖row_i‖` of every stored row, in f64.
+    #[must_use]
+    pub fn inv_norms(&self) -> &[f64] {
+        &self.inv_norm
+    }
+
+    /// Cosine similarity of rows `i` and `j`, in f64. O(d).
+    ///
+    /// # Panics
+    /// If `i` or `j` is not a candidate index.
+    #[must_use]
+    pub fn cosine(&self, i: usize, j: usize) -> f64 {
+        let dot: f64 = self.row(i).iter().zip(self.row(j)).map(|(&a, &b)| f64::from(a) * f64::from(b)).sum();
+        dot * self.inv_norm[i] * self.inv_norm[j]
     }
 }
 
@@ -282,7 +301,11 @@ impl RerankInput {
                 }
                 (true, Some(e)) => {
                     if e.len() != dim {
-                        return Err(ValidationError::DimensionMismatch { index, got: e.len(), expected: dim });
+                        return Err(ValidationError::DimensionMismatch {
+                            index,
+                            got: e.len(),
+                            expected: dim,
+                        });
                     }
                     push_unit_row(&e, index, &mut data)?;
                 }
@@ -299,7 +322,13 @@ impl RerankInput {
         }
 
         let normalized = normalize_scores(&scores, transform);
-        let embeddings = any_embedding.then_some(Embeddings { dim, data });
+        let embeddings = any_embedding.then(|| {
+            let inv_norm = data
+                .chunks_exact(dim)
+                .map(|r| 1.0 / r.iter().map(|&x| f64::from(x) * f64::from(x)).sum::<f64>().sqrt())
+                .collect();
+            Embeddings { dim, data, inv_norm }
+        });
         Ok(Self { ids, scores, normalized, groups, group_names, embeddings })
     }
 
@@ -384,9 +413,8 @@ fn normalize_scores(scores: &[f64], transform: ScoreTransform) -> Vec<f64> {
     match transform {
         ScoreTransform::None => scores.to_vec(),
         ScoreTransform::MinMax => {
-            let (lo, hi) = scores
-                .iter()
-                .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &x| (lo.min(x), hi.max(x)));
+            let (lo, hi) =
+                scores.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &x| (lo.min(x), hi.max(x)));
             let range = hi - lo;
             // `range` can overflow to +inf for scores near ±f64::MAX; halve both sides then.
             if range.is_finite() && range > 0.0 {
@@ -498,19 +526,37 @@ mod tests {
         let l = Limits::default();
         let t = ScoreTransform::MinMax;
         let dup = vec![cand("a", 1.0, None), cand("a", 2.0, None)];
-        assert!(matches!(RerankInput::new(dup, t, false, &l), Err(ValidationError::DuplicateId { index: 1, .. })));
+        assert!(matches!(
+            RerankInput::new(dup, t, false, &l),
+            Err(ValidationError::DuplicateId { index: 1, .. })
+        ));
         let nan = vec![cand("a", f64::NAN, None)];
-        assert!(matches!(RerankInput::new(nan, t, false, &l), Err(ValidationError::NonFinite { index: 0, .. })));
+        assert!(matches!(
+            RerankInput::new(nan, t, false, &l),
+            Err(ValidationError::NonFinite { index: 0, .. })
+        ));
         let zero = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, Some(vec![0.0]))];
         assert_eq!(RerankInput::new(zero, t, false, &l), Err(ValidationError::ZeroNorm { index: 1 }));
         let mixed = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, Some(vec![1.0, 2.0]))];
-        assert!(matches!(RerankInput::new(mixed, t, false, &l), Err(ValidationError::DimensionMismatch { index: 1, .. })));
+        assert!(matches!(
+            RerankInput::new(mixed, t, false, &l),
+            Err(ValidationError::DimensionMismatch { index: 1, .. })
+        ));
         let partial = vec![cand("a", 1.0, Some(vec![1.0])), cand("b", 1.0, None)];
-        assert!(matches!(RerankInput::new(partial, t, false, &l), Err(ValidationError::MissingEmbedding { index: 1, .. })));
+        assert!(matches!(
+            RerankInput::new(partial, t, false, &l),
+            Err(ValidationError::MissingEmbedding { index: 1, .. })
+        ));
         let needed = vec![cand("a", 1.0, None)];
-        assert!(matches!(RerankInput::new(needed, t, true, &l), Err(ValidationError::MissingEmbedding { index: 0, .. })));
+        assert!(matches!(
+            RerankInput::new(needed, t, true, &l),
+            Err(ValidationError::MissingEmbedding { index: 0, .. })
+        ));
         let inf = vec![cand("a", 1.0, Some(vec![f32::INFINITY]))];
-        assert!(matches!(RerankInput::new(inf, t, false, &l), Err(ValidationError::NonFinite { field: Field::Embedding, .. })));
+        assert!(matches!(
+            RerankInput::new(inf, t, false, &l),
+            Err(ValidationError::NonFinite { field: Field::Embedding, .. })
+        ));
     }
 
     #[test]

@@ -23,8 +23,8 @@ pub const EPSILON: f64 = 1e-9;
 /// with `α = (1 − λ)/(2λ)`, scaled by `λ`: `ln det L_{S∪{i}} − ln det L_S = 2α·s_i + ln d_i²`.
 /// Working in log space never overflows. Deviations: (1) candidates with `d_i² < EPSILON` are
 /// skipped rather than ending the run, and the run ends (filling by score) only when no remaining
-/// candidate is above it; (2) `S_ii` is the squared norm of the stored f32 row (1 up to rounding),
-/// so `S` is exactly the Gram matrix of the stored rows and stays PSD.
+/// candidate is above it; (2) `S` is the cosine of the stored f32 rows taken in f64 (inverse norms
+/// kept exactly), so `S_ii = 1` and `S` stays a PSD Gram matrix despite f32 rounding.
 ///
 /// # Complexity
 /// O(N·k·(d + k)) time: per pick one similarity row `S_{·,j}` (O(N·d)) and one factor row
@@ -53,7 +53,7 @@ impl Diversifier for Dpp {
 
     fn select(&self, input: &RerankInput, params: &Params, ws: &mut Workspace) -> Result<Selection, KernelError> {
         let lambda = params.lambda();
-        if lambda == 0.0 {
+        if lambda == 0.0 || input.is_empty() {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
@@ -65,11 +65,9 @@ impl Diversifier for Dpp {
         ws.query.resize(d, 0.0);
         ws.factor.clear();
         ws.factor.resize(n * m.saturating_sub(1), 0.0);
-        // d_i² starts at S_ii, the exact squared norm of the stored row.
+        // d_i² starts at S_ii = 1 (unit rows, see `Embeddings::cosine`).
         ws.running.clear();
-        ws.running.extend(
-            emb.as_slice().chunks_exact(d).map(|r| r.iter().map(|&x| f64::from(x) * f64::from(x)).sum::<f64>()),
-        );
+        ws.running.resize(n, 1.0);
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
         for step in 0..m {
@@ -97,7 +95,7 @@ impl Diversifier for Dpp {
             for (q, &x) in ws.query.iter_mut().zip(emb.row(j)) {
                 *q = f64::from(x);
             }
-            sims_into(emb.as_slice(), &ws.query, &mut ws.sims);
+            sims_into(emb.as_slice(), &ws.query, emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
             let (done, rest) = ws.factor.split_at_mut(step * n);
             cholesky_row_into(done, n, j, dj2, &ws.sims, &mut rest[..n], &mut ws.running);
             debug_assert!(ws.running[j].abs() < 1e-6, "picked item's residual must vanish");

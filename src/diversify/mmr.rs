@@ -39,7 +39,7 @@ impl Diversifier for Mmr {
 
     fn select(&self, input: &RerankInput, params: &Params, ws: &mut Workspace) -> Result<Selection, KernelError> {
         let lambda = params.lambda();
-        if lambda == 0.0 {
+        if lambda == 0.0 || input.is_empty() {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
@@ -72,7 +72,7 @@ impl Diversifier for Mmr {
             for (q, &x) in ws.query.iter_mut().zip(emb.row(j)) {
                 *q = f64::from(x);
             }
-            sims_into(emb.as_slice(), &ws.query, &mut ws.sims);
+            sims_into(emb.as_slice(), &ws.query, emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
             if step == 0 {
                 ws.running.copy_from_slice(&ws.sims);
             } else {

@@ -194,7 +194,8 @@ fn take(input: &RerankInput, ws: &mut Workspace, sel: &mut Selection, i: usize, 
 fn relevance_selection(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection {
     let m = params.k().min(input.len());
     ws.reset(input.len(), input.group_count());
-    let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
+    let mut sel =
+        Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
     fill_by_score(input, params, ws, m, &mut sel);
     sel
 }

@@ -5,14 +5,13 @@
 //! and solves for every candidate's residual. They share the fast kernels' tie-breaks, `EPSILON`
 //! rule and score fill, so on well-separated inputs the picks must be identical.
 
-use super::dpp::EPSILON;
 use super::by_score;
+use super::dpp::EPSILON;
 use crate::model::{Params, RerankInput};
 
 /// `cos(i, j)` of the stored unit rows, in f64.
 fn cosine(input: &RerankInput, i: usize, j: usize) -> f64 {
-    let e = input.embeddings().expect("reference kernels need embeddings");
-    e.row(i).iter().zip(e.row(j)).map(|(&a, &b)| f64::from(a) * f64::from(b)).sum()
+    input.embeddings().expect("reference kernels need embeddings").cosine(i, j)
 }
 
 /// Relevance order restricted to candidates not in `taken`, as a fill.
@@ -43,7 +42,10 @@ pub fn mmr(input: &RerankInput, params: &Params) -> Vec<usize> {
     while out.len() < m {
         let mut best: Option<(usize, f64)> = None;
         for i in (0..input.len()).filter(|i| !out.contains(i)) {
-            let max_sim = out.iter().map(|&j| cosine(input, i, j)).fold(None, |a: Option<f64>, x| Some(a.map_or(x, |a| a.max(x))));
+            let max_sim = out
+                .iter()
+                .map(|&j| cosine(input, i, j))
+                .fold(None, |a: Option<f64>, x| Some(a.map_or(x, |a| a.max(x))));
             let obj = (1.0 - lambda) * s[i] - lambda * max_sim.unwrap_or(0.0);
             if best.is_none_or(|(_, b)| obj > b) {
                 best = Some((i, obj));
@@ -100,7 +102,7 @@ pub fn dpp(input: &RerankInput, params: &Params) -> (Vec<usize>, Vec<f64>) {
                 let acc: f64 = (0..r).map(|q| l[r * t + q] * c[q]).sum();
                 c[r] = (cosine(input, out[r], i) - acc) / l[r * t + r];
             }
-            let d2 = cosine(input, i, i) - c.iter().map(|x| x * x).sum::<f64>();
+            let d2 = 1.0 - c.iter().map(|x| x * x).sum::<f64>();
             if d2 < EPSILON {
                 continue;
             }

@@ -20,21 +20,24 @@ const LANES: usize = 8;
 /// Candidates per block of [`cholesky_row_into`]: 32 f64 accumulators fit in AVX2's 16 registers.
 const ITEM_BLOCK: usize = 32;
 
-/// `out[i] = Σ_t rows[i·d + t] · x[t]` for every row of the row-major `n × d` matrix `rows`.
+/// `out[i] = (Σ_t rows[i·d + t] · x[t]) · scale[i] · x_scale` for every row of the row-major
+/// `n × d` matrix `rows`: with inverse norms as scales, the cosine row `S_{·,j}` for `x = row_j`.
 ///
 /// # Complexity
 /// O(n·d) time, no allocation.
 ///
 /// # Panics
-/// If `x.len() != d`, `rows.len() != out.len() · d` or `d == 0`.
-pub(crate) fn sims_into(rows: &[f32], x: &[f64], out: &mut [f64]) {
-    Arch::new().dispatch(Sims { rows, x, out });
+/// If `x.len() != d`, `rows.len() != out.len() · d`, `scale.len() != out.len()` or `d == 0`.
+pub(crate) fn sims_into(rows: &[f32], x: &[f64], scale: &[f64], x_scale: f64, out: &mut [f64]) {
+    Arch::new().dispatch(Sims { rows, x, scale, x_scale, out });
 }
 
 /// [`sims_into`] on a chosen SIMD back end (tests use this to pin the scalar path).
 pub(crate) struct Sims<'a> {
     pub(crate) rows: &'a [f32],
     pub(crate) x: &'a [f64],
+    pub(crate) scale: &'a [f64],
+    pub(crate) x_scale: f64,
     pub(crate) out: &'a mut [f64],
 }
 
@@ -44,10 +47,12 @@ impl WithSimd for Sims<'_> {
     #[inline(always)]
     fn with_simd<S: Simd>(self, _simd: S) {
         let d = self.x.len();
-        assert!(d > 0 && self.rows.len() == self.out.len() * d, "sims_into: shape mismatch");
+        let n = self.out.len();
+        assert!(d > 0 && self.rows.len() == n * d && self.scale.len() == n, "sims_into: shape mismatch");
         let mut row_blocks = self.rows.chunks_exact(d * ROW_BLOCK);
         let mut out_blocks = self.out.chunks_exact_mut(ROW_BLOCK);
-        for (block, out) in (&mut row_blocks).zip(&mut out_blocks) {
+        let mut scale_blocks = self.scale.chunks_exact(ROW_BLOCK);
+        for ((block, out), scale) in (&mut row_blocks).zip(&mut out_blocks).zip(&mut scale_blocks) {
             let r: [&[f32]; ROW_BLOCK] = std::array::from_fn(|b| &block[b * d..(b + 1) * d]);
             let mut acc = [[0.0_f64; LANES]; ROW_BLOCK];
             let mut tail = [0.0_f64; ROW_BLOCK];
@@ -67,11 +72,12 @@ impl WithSimd for Sims<'_> {
                 }
             }
             for b in 0..ROW_BLOCK {
-                out[b] = reduce(&acc[b]) + tail[b];
+                out[b] = (reduce(&acc[b]) + tail[b]) * scale[b] * self.x_scale;
             }
         }
-        for (row, o) in row_blocks.remainder().chunks_exact(d).zip(out_blocks.into_remainder()) {
-            *o = dot_one(row, self.x);
+        let rest = row_blocks.remainder().chunks_exact(d).zip(out_blocks.into_remainder());
+        for ((row, o), &sc) in rest.zip(scale_blocks.remainder()) {
+            *o = dot_one(row, self.x) * sc * self.x_scale;
         }
     }
 }
@@ -195,12 +201,14 @@ mod tests {
         for &(n, d) in &[(1, 1), (3, 5), (4, 8), (9, 17), (33, 64), (7, 130)] {
             let rows: Vec<f32> = (0..n * d).map(|_| lcg(&mut seed)).collect();
             let x: Vec<f64> = (0..d).map(|_| f64::from(lcg(&mut seed))).collect();
+            let scale: Vec<f64> = (0..n).map(|i| 1.0 + i as f64 / 8.0).collect();
             let mut fast = vec![0.0; n];
             let mut scalar = vec![0.0; n];
-            sims_into(&rows, &x, &mut fast);
-            Sims { rows: &rows, x: &x, out: &mut scalar }.with_simd(Scalar::new());
+            sims_into(&rows, &x, &scale, 0.5, &mut fast);
+            Sims { rows: &rows, x: &x, scale: &scale, x_scale: 0.5, out: &mut scalar }
+                .with_simd(Scalar::new());
             for i in 0..n {
-                let naive: f64 = (0..d).map(|t| f64::from(rows[i * d + t]) * x[t]).sum();
+                let naive = (0..d).map(|t| f64::from(rows[i * d + t]) * x[t]).sum::<f64>() * scale[i] * 0.5;
                 assert!((fast[i] - naive).abs() < 1e-12, "n={n} d={d} i={i}");
                 assert_eq!(fast[i].to_bits(), scalar[i].to_bits(), "dispatch paths differ");
             }

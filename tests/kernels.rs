@@ -1,0 +1,352 @@
+//! Kernel contract, against outside references: properties for every algorithm (proptest),
+//! greedy DPP against a brute force over nalgebra determinants, the slow in-crate references,
+//! and the named edge cases.
+
+mod common;
+
+use common::{candidates, slate, Rng};
+use medley::diversify::{self, reference, Diversifier, Dpp, Mmr, Quota, Relevance, EPSILON};
+use medley::{measures, CandidateInput, Limits, Params, RerankInput, Workspace};
+use nalgebra::DMatrix;
+use proptest::prelude::*;
+
+const ALL: [&dyn Diversifier; 4] = [&Relevance, &Mmr, &Dpp, &Quota];
+
+fn params(k: usize, lambda: f64) -> Params {
+    Params::new(k as u64, lambda, &Limits::default()).unwrap()
+}
+
+fn run(algo: &dyn Diversifier, input: &RerankInput, p: &Params) -> Vec<usize> {
+    algo.select(input, p, &mut Workspace::new()).unwrap().indices
+}
+
+fn assert_valid(out: &[usize], n: usize, k: usize, what: &str) {
+    assert_eq!(out.len(), k.min(n), "{what}: length");
+    let mut seen = vec![false; n];
+    for &i in out {
+        assert!(i < n, "{what}: index {i} out of range");
+        assert!(!std::mem::replace(&mut seen[i], true), "{what}: duplicate {i}");
+    }
+}
+
+fn arb_slate() -> impl Strategy<Value = (Vec<CandidateInput>, usize, f64)> {
+    (
+        1usize..40,
+        1usize..12,
+        1usize..6,
+        0u64..u64::MAX,
+        1usize..45,
+        prop_oneof![Just(0.0), Just(1.0), 0.0..=1.0f64],
+    )
+        .prop_map(|(n, d, g, seed, k, lambda)| (candidates(&mut Rng(seed), n, d, g), k, lambda))
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(300))]
+
+    #[test]
+    fn every_algorithm_returns_a_valid_deterministic_slate((cands, k, lambda) in arb_slate()) {
+        let input = slate(cands);
+        let p = params(k, lambda);
+        let mut ws = Workspace::new();
+        for algo in ALL {
+            let out = algo.select(&input, &p, &mut ws).unwrap().indices;
+            assert_valid(&out, input.len(), k, algo.name());
+            // Same input, reused workspace: same output.
+            prop_assert_eq!(&out, &algo.select(&input, &p, &mut ws).unwrap().indices);
+            prop_assert_eq!(&out, &run(algo, &input, &p));
+        }
+    }
+
+    #[test]
+    fn lambda_zero_is_relevance((cands, k, _l) in arb_slate()) {
+        let input = slate(cands);
+        let p = params(k, 0.0);
+        let base = run(&Relevance, &input, &p);
+        prop_assert_eq!(&base, &reference::relevance(&input, &p));
+        for algo in ALL {
+            prop_assert_eq!(&run(algo, &input, &p), &base, "{}", algo.name());
+        }
+    }
+
+    #[test]
+    fn permuting_input_permutes_nothing_but_tie_breaks((cands, k, _l) in arb_slate(), lambda in 0.0..0.95f64, seed in any::<u64>()) {
+        // Distinct scores and continuous embeddings leave no ties, so the chosen ids must agree.
+        // (At lambda = 1 the first MMR/DPP pick is a true tie, which goes to the lower index.)
+        let mut perm: Vec<usize> = (0..cands.len()).collect();
+        let mut rng = Rng(seed);
+        for i in (1..perm.len()).rev() { perm.swap(i, rng.below(i + 1)); }
+        let a = slate(cands.clone());
+        let b = slate(perm.iter().map(|&i| cands[i].clone()).collect());
+        let p = params(k, lambda);
+        for algo in ALL {
+            let ids = |input: &RerankInput| -> Vec<String> {
+                run(algo, input, &p).into_iter().map(|i| input.ids()[i].clone()).collect()
+            };
+            prop_assert_eq!(ids(&a), ids(&b), "{}", algo.name());
+        }
+    }
+
+    #[test]
+    fn fast_kernels_equal_slow_references((cands, k, lambda) in arb_slate()) {
+        let input = slate(cands);
+        let p = params(k, lambda);
+        prop_assert_eq!(run(&Mmr, &input, &p), reference::mmr(&input, &p));
+        let fast = Dpp.select(&input, &p, &mut Workspace::new()).unwrap();
+        let (slow, slow_gains) = reference::dpp(&input, &p);
+        prop_assert_eq!(&fast.indices, &slow);
+        if lambda > 0.0 {
+            let picked = fast.exhausted_at.unwrap_or(fast.indices.len());
+            for (g, r) in fast.gains[..picked].iter().zip(&slow_gains) {
+                prop_assert!((g - r).abs() < 1e-9, "residual {g} vs {r}");
+            }
+        }
+    }
+
+    #[test]
+    fn quota_at_lambda_one_balances_and_keeps_score_order_within_a_category((cands, k, _l) in arb_slate()) {
+        let input = slate(cands);
+        let out = run(&Quota, &input, &params(k, 1.0));
+        let groups = input.group_count();
+        let size: Vec<usize> = (0..groups).map(|g| input.groups().iter().filter(|&&x| x as usize == g).count()).collect();
+        let mut count = vec![0usize; groups];
+        let mut last_score = vec![f64::INFINITY; groups];
+        for &i in &out {
+            let g = input.groups()[i] as usize;
+            prop_assert!(input.scores()[i] <= last_score[g], "score order broken in group {g}");
+            last_score[g] = input.scores()[i];
+            count[g] += 1;
+            // At every prefix: no group is more than one ahead of any group that still has items.
+            let max = *count.iter().max().unwrap();
+            for h in 0..groups {
+                if count[h] < size[h] {
+                    prop_assert!(max <= count[h] + 1, "counts {count:?} sizes {size:?}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn caps_hold_for_every_algorithm((cands, k, lambda) in arb_slate(), cap in 1usize..4) {
+        let input = slate(cands);
+        let p = params(k, lambda).with_max_per_category(Some(cap));
+        let eligible: usize = (0..input.group_count())
+            .map(|g| input.groups().iter().filter(|&&x| x as usize == g).count().min(cap))
+            .sum();
+        for algo in ALL {
+            let out = run(algo, &input, &p);
+            prop_assert_eq!(out.len(), k.min(eligible), "{}", algo.name());
+            let mut count = vec![0usize; input.group_count()];
+            for &i in &out { count[input.groups()[i] as usize] += 1; }
+            prop_assert!(count.iter().all(|&c| c <= cap), "{}: {:?}", algo.name(), count);
+        }
+    }
+}
+
+/// Greedy DPP evaluated the slow way with nalgebra (a general-purpose linear-algebra library):
+/// at each step, ln det of the Gram matrix of the chosen set plus each candidate, by LU.
+fn nalgebra_greedy_dpp(input: &RerankInput, k: usize, lambda: f64) -> Vec<usize> {
+    let e = input.embeddings().unwrap();
+    let n = input.len();
+    // Cosine of the stored f32 rows, in f64 (the kernel the service defines).
+    let gram = DMatrix::<f64>::from_fn(n, n, |i, j| {
+        let dot: f64 = e.row(i).iter().zip(e.row(j)).map(|(&a, &b)| f64::from(a) * f64::from(b)).sum();
+        let norm = |r: &[f32]| r.iter().map(|&x| f64::from(x) * f64::from(x)).sum::<f64>().sqrt();
+        dot / (norm(e.row(i)) * norm(e.row(j)))
+    });
+    let s = input.normalized();
+    let mut chosen: Vec<usize> = Vec::new();
+    let mut logdet = 0.0;
+    while chosen.len() < k.min(n) {
+        let mut best: Option<(usize, f64, f64)> = None;
+        for i in (0..n).filter(|i| !chosen.contains(i)) {
+            let idx: Vec<usize> = chosen.iter().copied().chain([i]).collect();
+            let det = gram.select_rows(&idx).select_columns(&idx).determinant();
+            if !(det > 0.0) || (det.ln() - logdet) < EPSILON.ln() {
+                continue;
+            }
+            let obj = (1.0 - lambda) * s[i] + lambda * (det.ln() - logdet);
+            // Objectives within 1e-12 are ties (LU adds ulp noise to exact ties such as the first
+            // pick at lambda = 1); the contract gives ties to the lower index.
+            if best.is_none_or(|(_, b, _)| obj > b + 1e-12) {
+                best = Some((i, obj, det.ln()));
+            }
+        }
+        match best {
+            Some((i, _, ld)) => {
+                chosen.push(i);
+                logdet = ld;
+            }
+            None => {
+                let mut rest: Vec<usize> = (0..n).filter(|i| !chosen.contains(i)).collect();
+                rest.sort_by(|&a, &b| input.scores()[b].total_cmp(&input.scores()[a]).then(a.cmp(&b)));
+                chosen.extend(rest.into_iter().take(k.min(n) - chosen.len()));
+            }
+        }
+    }
+    chosen
+}
+
+#[test]
+fn dpp_matches_nalgebra_brute_force_on_hundreds_of_slates() {
+    let mut rng = Rng(2018);
+    let mut cases = 0;
+    for _ in 0..120 {
+        let n = 5 + rng.below(36);
+        let d = 3 + rng.below(14);
+        let k = 1 + rng.below(n);
+        let input = slate(candidates(&mut rng, n, d, 4));
+        for lambda in [0.0, 0.5, 1.0, 0.2 + 0.6 * rng.unit()] {
+            let sel = Dpp.select(&input, &params(k, lambda), &mut Workspace::new()).unwrap();
+            assert_eq!(
+                sel.indices,
+                nalgebra_greedy_dpp(&input, k, lambda),
+                "n={n} d={d} k={k} lambda={lambda}"
+            );
+            if lambda > 0.0 {
+                // ln det of the chosen set's Gram matrix = Σ ln d² recorded along the way.
+                let picked = &sel.indices[..sel.exhausted_at.unwrap_or(sel.indices.len())];
+                let e = input.embeddings().unwrap();
+                let g = DMatrix::<f64>::from_fn(picked.len(), picked.len(), |a, b| {
+                    e.cosine(picked[a], picked[b])
+                });
+                let sum: f64 = sel.gains[..picked.len()].iter().map(|d2| d2.ln()).sum();
+                let ld = g.determinant().ln();
+                assert!((sum - ld).abs() < 1e-6 * (1.0 + ld.abs()), "Σ ln d² = {sum}, ln det = {ld}");
+                if d < k {
+                    assert!(
+                        sel.exhausted_at.is_some_and(|at| at <= d),
+                        "d={d} < k={k} must exhaust by slot d"
+                    );
+                }
+            }
+            cases += 1;
+        }
+    }
+    assert_eq!(cases, 480);
+}
+
+fn one_candidate_slate(score: f64) -> RerankInput {
+    slate(vec![CandidateInput { id: "solo".into(), score, category: None, embedding: Some(vec![1.0, 2.0]) }])
+}
+
+#[test]
+fn edge_empty_and_single_slates() {
+    let empty = RerankInput::new(vec![], medley::ScoreTransform::MinMax, true, &Limits::default()).unwrap();
+    let one = one_candidate_slate(0.3);
+    for algo in ALL {
+        for lambda in [0.0, 0.5, 1.0] {
+            assert!(run(algo, &empty, &params(5, lambda)).is_empty());
+            assert_eq!(run(algo, &one, &params(5, lambda)), vec![0], "{}", algo.name());
+        }
+    }
+}
+
+#[test]
+fn edge_k_above_n_returns_everything() {
+    let input = slate(candidates(&mut Rng(3), 7, 4, 3));
+    for algo in ALL {
+        let out = run(algo, &input, &params(50, 0.6));
+        assert_valid(&out, 7, 50, algo.name());
+    }
+}
+
+#[test]
+fn edge_one_dimension_exhausts_after_one_pick() {
+    // d = 1: every unit row is ±1, so after one pick every residual is 0 and the rest is by score.
+    let input = slate(candidates(&mut Rng(5), 6, 1, 2));
+    let sel = Dpp.select(&input, &params(4, 0.9), &mut Workspace::new()).unwrap();
+    assert_eq!(sel.exhausted_at, Some(1));
+    let rest: Vec<usize> = reference::relevance(&input, &params(6, 0.0))
+        .into_iter()
+        .filter(|&i| i != sel.indices[0])
+        .take(3)
+        .collect();
+    assert_eq!(&sel.indices[1..], &rest[..]);
+}
+
+#[test]
+fn edge_dimension_below_k_fills_by_score() {
+    let input = slate(candidates(&mut Rng(8), 30, 3, 3));
+    let sel = Dpp.select(&input, &params(10, 0.7), &mut Workspace::new()).unwrap();
+    assert_eq!(sel.exhausted_at, Some(3), "rank of 3-dimensional rows is 3");
+    assert_valid(&sel.indices, 30, 10, "dpp");
+}
+
+#[test]
+fn edge_all_scores_equal_and_one_category() {
+    let mut rng = Rng(9);
+    let cands: Vec<CandidateInput> =
+        candidates(&mut rng, 12, 5, 1).into_iter().map(|c| CandidateInput { score: 0.5, ..c }).collect();
+    let input = slate(cands);
+    assert!(input.normalized().iter().all(|&s| (s - 1.0).abs() < 1e-15), "equal scores normalise to 1");
+    // Relevance ties go to the lower index; quota with one category is relevance.
+    assert_eq!(run(&Relevance, &input, &params(4, 0.0)), vec![0, 1, 2, 3]);
+    assert_eq!(run(&Quota, &input, &params(4, 1.0)), vec![0, 1, 2, 3]);
+    for algo in ALL {
+        assert_valid(&run(algo, &input, &params(6, 0.8)), 12, 6, algo.name());
+    }
+}
+
+#[test]
+fn edge_duplicate_embeddings_are_never_both_picked_by_dpp() {
+    let mut rng = Rng(10);
+    let mut cands = candidates(&mut rng, 10, 6, 2);
+    let twin = cands[0].embedding.clone();
+    cands[1].embedding = twin;
+    cands[0].score = 10.0;
+    cands[1].score = 9.0;
+    let input = slate(cands);
+    let sel = Dpp.select(&input, &params(5, 0.5), &mut Workspace::new()).unwrap();
+    assert_eq!(sel.indices[0], 0);
+    assert!(!sel.indices[..sel.exhausted_at.unwrap_or(5)].contains(&1), "twin has zero residual");
+    // MMR sees the twin at similarity 1 and pushes it down.
+    assert_ne!(run(&Mmr, &input, &params(2, 0.5))[1], 1);
+}
+
+#[test]
+fn edge_large_slates_run() {
+    let mut rng = Rng(11);
+    let big_n = slate(candidates(&mut rng, 5_000, 16, 6));
+    let wide_d = slate(candidates(&mut rng, 200, 1_024, 6));
+    for input in [&big_n, &wide_d] {
+        for algo in ALL {
+            let out = run(algo, input, &params(20, 0.5));
+            assert_valid(&out, input.len(), 20, algo.name());
+        }
+    }
+}
+
+#[test]
+fn registry_finds_every_algorithm_by_name() {
+    let names: Vec<&str> = diversify::names().collect();
+    assert_eq!(names, ["relevance", "mmr", "dpp", "quota"]);
+    for name in names {
+        assert_eq!(diversify::by_name(name).unwrap().name(), name);
+    }
+    assert!(diversify::by_name("nope").is_none());
+}
+
+#[test]
+fn raising_lambda_raises_category_entropy_on_clustered_data() {
+    // Common practice (the accuracy–diversity trade-off): scores favour one category.
+    let mut rng = Rng(12);
+    let cands: Vec<CandidateInput> = (0..200)
+        .map(|i| {
+            let g = i % 5;
+            let mut e: Vec<f32> = (0..8).map(|_| (rng.normal() * 0.2) as f32).collect();
+            e[g] += 1.0;
+            CandidateInput {
+                id: format!("i{i}"),
+                score: if g == 0 { 1.0 + rng.unit() } else { rng.unit() },
+                category: Some(format!("g{g}")),
+                embedding: Some(e),
+            }
+        })
+        .collect();
+    let input = slate(cands);
+    for algo in [&Mmr as &dyn Diversifier, &Dpp, &Quota] {
+        let h = |l: f64| measures::category_entropy_bits(&input, &run(algo, &input, &params(10, l)));
+        assert!(h(0.0) < h(0.5) + 1e-12 && h(0.5) <= h(1.0) + 1e-12 && h(0.0) < h(1.0), "{}", algo.name());
+    }
+}
