@@ -14,6 +14,8 @@
 //! [`Diversifier::select`] with a reusable [`Workspace`]. The result lists candidate indices in
 //! slate order; [`measures`] describes how diverse it is.
 
+#![forbid(unsafe_code)]
+
 pub mod diversify;
 pub mod measures;
 pub mod model;

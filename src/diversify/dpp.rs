@@ -1,6 +1,6 @@
 //! `dpp`: greedy MAP inference for a quality-weighted DPP, with an incremental Cholesky factor.
 
-use super::similarity::{cholesky_row_into, sims_into};
+use super::similarity::{row_dots_f64, sims_into};
 use super::{allowed, fill_by_score, relevance_selection, take, Diversifier, KernelError, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
@@ -27,8 +27,8 @@ pub const EPSILON: f64 = 1e-9;
 /// kept exactly), so `S_ii = 1` and `S` stays a PSD Gram matrix despite f32 rounding.
 ///
 /// # Complexity
-/// O(N·k·(d + k)) time: per pick one similarity row `S_{·,j}` (O(N·d)) and one factor row
-/// (O(N·|S|)); the N×N kernel is never built. O(N·k) extra memory for the factor rows.
+/// O(N·k·(d + k)) time: per pick one similarity row `S_{·,j}` (O(N·d)) and one factor column
+/// (O(N·|S|)); the N×N kernel is never built. O(N·k) extra memory for the factor.
 ///
 /// # Invariants
 /// `S` is symmetric PSD by construction (a Gram matrix); the factor is lower-triangular with a
@@ -37,8 +37,12 @@ pub const EPSILON: f64 = 1e-9;
 /// `Σ ln(gains)` over the DPP-chosen prefix equals `ln det S_Y` for that prefix.
 ///
 /// # Numerical notes
-/// Embeddings are read as f32; similarity, factor and residuals are f64, which keeps an exhausted
-/// residual near 1e-15 instead of the ~1e-7 noise f32 would leave. Ties go to the lower index.
+/// Similarity, factor and residuals are f64, which keeps an exhausted residual near 1e-15 instead
+/// of the ~1e-7 noise f32 sums would leave, so `EPSILON` means what it says. Embedding rows stay
+/// f32 and are widened on load (streaming half the bytes of f64 rows measured ~1.7× faster). The
+/// factor is stored row per candidate (`c_i` contiguous) so `⟨c_j, c_i⟩` over all i is one
+/// streaming pass (measured ~2× faster than one row per pick).
+/// Ties go to the lower index.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct Dpp;
 
@@ -57,14 +61,16 @@ impl Diversifier for Dpp {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
-        let (n, d) = (input.len(), emb.dim());
+        let n = input.len();
         let m = params.k().min(n);
         let s = input.normalized();
         ws.reset(n, input.group_count());
         ws.sims.resize(n, 0.0);
-        ws.query.resize(d, 0.0);
+        ws.dots.resize(n, 0.0);
+        // Factor rows: candidate i's c_i is factor[i·stride .. i·stride + step].
+        let stride = m.saturating_sub(1).max(1);
         ws.factor.clear();
-        ws.factor.resize(n * m.saturating_sub(1), 0.0);
+        ws.factor.resize(n * stride, 0.0);
         // d_i² starts at S_ii = 1 (unit rows, see `Embeddings::cosine`).
         ws.running.clear();
         ws.running.resize(n, 1.0);
@@ -92,12 +98,19 @@ impl Diversifier for Dpp {
             if step + 1 == m {
                 break;
             }
-            for (q, &x) in ws.query.iter_mut().zip(emb.row(j)) {
-                *q = f64::from(x);
-            }
+            // Algorithm 1, lines 6–7: S_{·,j}, then ⟨c_j, c_i⟩ for every i, then e_i and d_i².
+            ws.query.clear();
+            ws.query.extend(emb.row(j).iter().map(|&x| f64::from(x)));
             sims_into(emb.as_slice(), &ws.query, emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
-            let (done, rest) = ws.factor.split_at_mut(step * n);
-            cholesky_row_into(done, n, j, dj2, &ws.sims, &mut rest[..n], &mut ws.running);
+            ws.query.clear();
+            ws.query.extend_from_slice(&ws.factor[j * stride..j * stride + step]);
+            row_dots_f64(&ws.factor, stride, &ws.query, &[], 1.0, &mut ws.dots);
+            let inv_dj = 1.0 / dj2.sqrt();
+            for i in 0..n {
+                let e = (ws.sims[i] - ws.dots[i]) * inv_dj;
+                ws.factor[i * stride + step] = e;
+                ws.running[i] -= e * e;
+            }
             debug_assert!(ws.running[j].abs() < 1e-6, "picked item's residual must vanish");
         }
         Ok(sel)

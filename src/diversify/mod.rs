@@ -92,11 +92,13 @@ pub struct Workspace {
     order: Vec<usize>,
     /// Similarity row `S_{·,j}` of the item just picked.
     sims: Vec<f64>,
-    /// The picked item's embedding widened to f64.
+    /// A copy of the vector being dotted against every row (a unit row or a factor row).
     query: Vec<f64>,
+    /// `⟨c_j, c_i⟩` for every candidate i.
+    dots: Vec<f64>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
-    /// DPP Cholesky factor rows, one row of N per pick.
+    /// DPP Cholesky factor, one row of up to k − 1 entries per candidate.
     factor: Vec<f64>,
     /// Items taken per group, for caps and quotas.
     group_taken: Vec<usize>,

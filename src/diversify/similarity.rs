@@ -1,39 +1,124 @@
-//! Inner loops shared by the embedding-based kernels: one similarity row `S_{·,j}` and the
-//! incremental Cholesky row update.
+//! Inner loops shared by the embedding-based kernels: batched dot products of one vector with
+//! every row of a row-major matrix.
 //!
-//! Both are written as fixed-width blocks over plain arrays so LLVM vectorises them, and both run
-//! under [`pulp::Arch::dispatch`], which recompiles the same safe code with AVX2/FMA (x86-64-v3)
-//! when the CPU has it and falls back to the baseline target otherwise. Neither uses fused
-//! multiply-add explicitly and the accumulation order is fixed by the source, so every dispatch
-//! path returns bit-identical results; the tests check that against [`pulp::Scalar`].
+//! - [`row_dots_f32`] (MMR): f32 rows, f32 sums.
+//! - [`sims_into`] (DPP similarity row): f32 rows widened to f64 on load, f64 sums.
+//! - [`row_dots_f64`] (DPP factor rows): f64 rows, f64 sums.
 //!
-//! Embeddings are stored as f32 (memory traffic is what bounds these loops); products and sums are
-//! taken in f64. f64 accumulation is what lets the DPP kernel see a residual of ~1e-15 rather than
-//! ~1e-7 when the kernel is exhausted, so the `EPSILON` cut-off in `dpp.rs` is meaningful.
+//! The first and last use pulp's portable SIMD vocabulary ([`pulp::Simd`]) through
+//! [`pulp::Arch::dispatch`], which picks AVX2 + FMA (x86-64-v3) at run time when the CPU has it and
+//! the scalar back end otherwise; no `unsafe`, no `-C target-cpu`. pulp's portable vocabulary has no
+//! f32→f64 widening, so [`sims_into`] has an explicit x86-64-v3 body (pulp's safe intrinsic
+//! wrappers) and a portable body for other CPUs. Four rows are processed together so each load of
+//! the vector feeds several independent FMA chains.
+//!
+//! Measured on the dev machine (see README): LLVM's auto-vectorisation of plain blocked loops
+//! reached 2–6 GMAC/s (it transposes across rows or spills accumulators); these bodies are bound
+//! by L2 bandwidth instead, which is why DPP widens f32 rows on load (half the bytes of f64 rows:
+//! ~7.5 vs ~4.5 GMAC/s).
+//!
+//! Precision: MMR ranks by `score − max cos` and tolerates f32 sums (error ~1e-7). DPP compares
+//! residuals with `EPSILON = 1e-9`, which f32 noise would swamp, so it sums in f64 throughout.
 
 use pulp::{Arch, Simd, WithSimd};
 
-/// Rows processed together by [`sims_into`], sharing each load of the query vector.
+/// Rows per block: four FMA chains per vector load.
 const ROW_BLOCK: usize = 4;
-/// Lanes per accumulator array: two 256-bit f64 vectors.
-const LANES: usize = 8;
-/// Candidates per block of [`cholesky_row_into`]: 32 f64 accumulators fit in AVX2's 16 registers.
-const ITEM_BLOCK: usize = 32;
 
-/// `out[i] = (Σ_t rows[i·d + t] · x[t]) · scale[i] · x_scale` for every row of the row-major
-/// `n × d` matrix `rows`: with inverse norms as scales, the cosine row `S_{·,j}` for `x = row_j`.
+/// `out[i] = (Σ_{q<len} m[i·stride + q] · x[q]) · scale(i)` for `i < out.len()`, in f64,
+/// where `len = x.len()` and `scale(i)` is `scale[i] · x_scale` (or 1 when `scale` is empty).
+///
+/// # Complexity
+/// O(out.len() · len) time, no allocation.
+///
+/// # Panics
+/// If `stride < x.len()`, `m` is shorter than `(out.len() − 1)·stride + x.len()`, or `scale`
+/// is neither empty nor `out.len()` long.
+pub(crate) fn row_dots_f64(
+    m: &[f64],
+    stride: usize,
+    x: &[f64],
+    scale: &[f64],
+    x_scale: f64,
+    out: &mut [f64],
+) {
+    Arch::new().dispatch(RowDotsF64 { m, stride, x, scale, x_scale, out });
+}
+
+/// [`row_dots_f64`] on a chosen back end (tests pin the scalar one).
+pub(crate) struct RowDotsF64<'a> {
+    pub(crate) m: &'a [f64],
+    pub(crate) stride: usize,
+    pub(crate) x: &'a [f64],
+    pub(crate) scale: &'a [f64],
+    pub(crate) x_scale: f64,
+    pub(crate) out: &'a mut [f64],
+}
+
+impl WithSimd for RowDotsF64<'_> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, simd: S) {
+        let Self { m, stride, x, scale, x_scale, out } = self;
+        let (n, len) = (out.len(), x.len());
+        assert!(stride >= len, "row_dots_f64: stride shorter than the vector");
+        assert!(n == 0 || m.len() >= (n - 1) * stride + len, "row_dots_f64: matrix too short");
+        assert!(scale.is_empty() || scale.len() == n, "row_dots_f64: scale length");
+        let (xv, xt) = S::as_simd_f64s(x);
+        let row = |i: usize| &m[i * stride..i * stride + len];
+        let zero = simd.splat_f64s(0.0);
+        let blocks = n / ROW_BLOCK;
+        for blk in 0..blocks {
+            let base = blk * ROW_BLOCK;
+            let r: [&[S::f64s]; ROW_BLOCK] = std::array::from_fn(|b| S::as_simd_f64s(row(base + b)).0);
+            let mut acc = [zero; ROW_BLOCK];
+            for (c, &xc) in xv.iter().enumerate() {
+                for b in 0..ROW_BLOCK {
+                    acc[b] = simd.mul_add_e_f64s(r[b][c], xc, acc[b]);
+                }
+            }
+            for b in 0..ROW_BLOCK {
+                let tail: f64 = S::as_simd_f64s(row(base + b)).1.iter().zip(xt).map(|(a, b)| a * b).sum();
+                let s = if scale.is_empty() { 1.0 } else { scale[base + b] * x_scale };
+                out[base + b] = (simd.reduce_sum_f64s(acc[b]) + tail) * s;
+            }
+        }
+        for i in blocks * ROW_BLOCK..n {
+            let (rv, rt) = S::as_simd_f64s(row(i));
+            let mut acc = zero;
+            for (&a, &b) in rv.iter().zip(xv) {
+                acc = simd.mul_add_e_f64s(a, b, acc);
+            }
+            let tail: f64 = rt.iter().zip(xt).map(|(a, b)| a * b).sum();
+            let s = if scale.is_empty() { 1.0 } else { scale[i] * x_scale };
+            out[i] = (simd.reduce_sum_f64s(acc) + tail) * s;
+        }
+    }
+}
+
+/// Lanes per accumulator array of the portable [`sims_into`] body.
+const LANES: usize = 8;
+
+/// `out[i] = (Σ_t rows[i·d + t] · x[t]) · scale[i] · x_scale` in f64 for every row of the
+/// row-major `n × d` f32 matrix `rows` (`d = x.len()`): with inverse norms as scales and
+/// `x = row_j`, the cosine row `S_{·,j}`.
 ///
 /// # Complexity
 /// O(n·d) time, no allocation.
 ///
 /// # Panics
-/// If `x.len() != d`, `rows.len() != out.len() · d`, `scale.len() != out.len()` or `d == 0`.
+/// If `d == 0`, `rows.len() != out.len() · d` or `scale.len() != out.len()`.
 pub(crate) fn sims_into(rows: &[f32], x: &[f64], scale: &[f64], x_scale: f64, out: &mut [f64]) {
-    Arch::new().dispatch(Sims { rows, x, scale, x_scale, out });
+    #[cfg(target_arch = "x86_64")]
+    if let Some(v3) = pulp::x86::V3::try_new() {
+        return Simd::vectorize(v3, v3::Sims { v3, rows, x, scale, x_scale, out });
+    }
+    Arch::new().dispatch(SimsPortable { rows, x, scale, x_scale, out });
 }
 
-/// [`sims_into`] on a chosen SIMD back end (tests use this to pin the scalar path).
-pub(crate) struct Sims<'a> {
+/// Portable body of [`sims_into`]: fixed-width blocks that any target vectorises somewhat.
+pub(crate) struct SimsPortable<'a> {
     pub(crate) rows: &'a [f32],
     pub(crate) x: &'a [f64],
     pub(crate) scale: &'a [f64],
@@ -41,146 +126,153 @@ pub(crate) struct Sims<'a> {
     pub(crate) out: &'a mut [f64],
 }
 
-impl WithSimd for Sims<'_> {
+impl WithSimd for SimsPortable<'_> {
     type Output = ();
 
     #[inline(always)]
     fn with_simd<S: Simd>(self, _simd: S) {
-        let d = self.x.len();
-        let n = self.out.len();
-        assert!(d > 0 && self.rows.len() == n * d && self.scale.len() == n, "sims_into: shape mismatch");
-        let mut row_blocks = self.rows.chunks_exact(d * ROW_BLOCK);
-        let mut out_blocks = self.out.chunks_exact_mut(ROW_BLOCK);
-        let mut scale_blocks = self.scale.chunks_exact(ROW_BLOCK);
-        for ((block, out), scale) in (&mut row_blocks).zip(&mut out_blocks).zip(&mut scale_blocks) {
-            let r: [&[f32]; ROW_BLOCK] = std::array::from_fn(|b| &block[b * d..(b + 1) * d]);
-            let mut acc = [[0.0_f64; LANES]; ROW_BLOCK];
-            let mut tail = [0.0_f64; ROW_BLOCK];
-            let full = d - d % LANES;
-            for c in (0..full).step_by(LANES) {
-                let xc = &self.x[c..c + LANES];
-                for b in 0..ROW_BLOCK {
-                    let rc = &r[b][c..c + LANES];
-                    for l in 0..LANES {
-                        acc[b][l] += f64::from(rc[l]) * xc[l];
-                    }
-                }
-            }
-            for t in full..d {
-                for b in 0..ROW_BLOCK {
-                    tail[b] += f64::from(r[b][t]) * self.x[t];
-                }
-            }
-            for b in 0..ROW_BLOCK {
-                out[b] = (reduce(&acc[b]) + tail[b]) * scale[b] * self.x_scale;
-            }
-        }
-        let rest = row_blocks.remainder().chunks_exact(d).zip(out_blocks.into_remainder());
-        for ((row, o), &sc) in rest.zip(scale_blocks.remainder()) {
-            *o = dot_one(row, self.x) * sc * self.x_scale;
+        let Self { rows, x, scale, x_scale, out } = self;
+        let d = x.len();
+        assert!(
+            d > 0 && rows.len() == out.len() * d && scale.len() == out.len(),
+            "sims_into: shape mismatch"
+        );
+        for ((row, o), &sc) in rows.chunks_exact(d).zip(out.iter_mut()).zip(scale) {
+            *o = dot_widened(row, x) * sc * x_scale;
         }
     }
 }
 
-/// One dot product with the same summation order as a row of a [`Sims`] block.
+/// `Σ_t f64(row[t]) · x[t]` with eight lanes, then a pairwise sum.
 #[inline(always)]
-fn dot_one(row: &[f32], x: &[f64]) -> f64 {
+fn dot_widened(row: &[f32], x: &[f64]) -> f64 {
     let d = x.len();
     let full = d - d % LANES;
     let mut acc = [0.0_f64; LANES];
-    for c in (0..full).step_by(LANES) {
+    for (rc, xc) in row[..full].chunks_exact(LANES).zip(x[..full].chunks_exact(LANES)) {
         for l in 0..LANES {
-            acc[l] += f64::from(row[c + l]) * x[c + l];
+            acc[l] += f64::from(rc[l]) * xc[l];
         }
     }
-    let mut tail = 0.0;
-    for t in full..d {
-        tail += f64::from(row[t]) * x[t];
+    let tail: f64 = (full..d).map(|t| f64::from(row[t]) * x[t]).sum();
+    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + tail
+}
+
+/// Explicit AVX2 + FMA body of [`sims_into`] (x86-64-v3), entered only after pulp checked the CPU.
+#[cfg(target_arch = "x86_64")]
+mod v3 {
+    use super::{dot_widened, ROW_BLOCK};
+    use pulp::bytemuck::cast;
+    use pulp::x86::V3;
+    use pulp::{f32x4, f64x4, Simd, WithSimd};
+
+    /// Lanes per inner iteration: one f32x8 load, widened to two f64x4.
+    const W: usize = 8;
+
+    pub(super) struct Sims<'a> {
+        pub(super) v3: V3,
+        pub(super) rows: &'a [f32],
+        pub(super) x: &'a [f64],
+        pub(super) scale: &'a [f64],
+        pub(super) x_scale: f64,
+        pub(super) out: &'a mut [f64],
     }
-    reduce(&acc) + tail
+
+    impl WithSimd for Sims<'_> {
+        type Output = ();
+
+        #[inline(always)]
+        fn with_simd<S: Simd>(self, _simd: S) {
+            let Self { v3: v, rows, x, scale, x_scale, out } = self;
+            let (d, n) = (x.len(), out.len());
+            assert!(d > 0 && rows.len() == n * d && scale.len() == n, "sims_into: shape mismatch");
+            let full = d - d % W;
+            let xs: &[[f64; W]] = x[..full].as_chunks::<W>().0;
+            let zero = v.splat_f64x4(0.0);
+            let blocks = n / ROW_BLOCK;
+            for blk in 0..blocks {
+                let base = blk * ROW_BLOCK;
+                let r: [&[[f32; W]]; ROW_BLOCK] =
+                    std::array::from_fn(|b| rows[(base + b) * d..(base + b) * d + full].as_chunks::<W>().0);
+                // Eight independent FMA chains (4 rows × 2 halves) hide the FMA latency.
+                let mut acc = [[zero; 2]; ROW_BLOCK];
+                for (c, xc) in xs.iter().enumerate() {
+                    let [x0, x1]: [f64x4; 2] = cast(*xc);
+                    for b in 0..ROW_BLOCK {
+                        let [lo, hi]: [f32x4; 2] = cast(r[b][c]);
+                        acc[b][0] = v.mul_add_f64x4(v.convert_f32x4_to_f64x4(lo), x0, acc[b][0]);
+                        acc[b][1] = v.mul_add_f64x4(v.convert_f32x4_to_f64x4(hi), x1, acc[b][1]);
+                    }
+                }
+                for b in 0..ROW_BLOCK {
+                    let row = &rows[(base + b) * d..(base + b + 1) * d];
+                    let tail: f64 = (full..d).map(|t| f64::from(row[t]) * x[t]).sum();
+                    let s: [f64; 4] = cast(v.add_f64x4(acc[b][0], acc[b][1]));
+                    out[base + b] = ((s[0] + s[1]) + (s[2] + s[3]) + tail) * scale[base + b] * x_scale;
+                }
+            }
+            for i in blocks * ROW_BLOCK..n {
+                out[i] = dot_widened(&rows[i * d..(i + 1) * d], x) * scale[i] * x_scale;
+            }
+        }
+    }
 }
 
-/// Pairwise sum of one accumulator array.
-#[inline(always)]
-fn reduce(a: &[f64; LANES]) -> f64 {
-    ((a[0] + a[4]) + (a[1] + a[5])) + ((a[2] + a[6]) + (a[3] + a[7]))
-}
-
-/// One step of the incremental Cholesky update of Chen et al. (2018), Algorithm 1, lines 6–7.
-///
-/// `c` holds the factor rows computed so far, one row of `n` entries per earlier pick
-/// (`c[t·n + i]` is `c_i[t]`); `sims[i] = S_{i,j}` for the item `j` just picked, whose residual is
-/// `d_j² = dj2 > 0`. Writes `e_i = (S_{i,j} − ⟨c_j, c_i⟩) / d_j` into `e_out[i]` (the next row of
-/// `c`) and subtracts `e_i²` from `residual[i]`.
+/// `out[i] = f64(Σ_t rows[i·d + t] · x[t]) · scale[i] · x_scale` with f32 products and sums, for
+/// every row of the row-major `n × d` f32 matrix `rows` (`d = x.len()`).
 ///
 /// # Complexity
-/// O(n·t) time for `t` earlier rows, no allocation.
+/// O(n·d) time, no allocation.
 ///
 /// # Panics
-/// If the slices' lengths disagree with `n` or `j >= n`.
-pub(crate) fn cholesky_row_into(
-    c: &[f64],
-    n: usize,
-    j: usize,
-    dj2: f64,
-    sims: &[f64],
-    e_out: &mut [f64],
-    residual: &mut [f64],
-) {
-    Arch::new().dispatch(CholeskyRow { c, n, j, dj2, sims, e_out, residual });
+/// If `d == 0`, `rows.len() != out.len() · d` or `scale.len() != out.len()`.
+pub(crate) fn row_dots_f32(rows: &[f32], x: &[f32], scale: &[f64], x_scale: f64, out: &mut [f64]) {
+    Arch::new().dispatch(RowDotsF32 { rows, x, scale, x_scale, out });
 }
 
-/// [`cholesky_row_into`] on a chosen SIMD back end.
-pub(crate) struct CholeskyRow<'a> {
-    pub(crate) c: &'a [f64],
-    pub(crate) n: usize,
-    pub(crate) j: usize,
-    pub(crate) dj2: f64,
-    pub(crate) sims: &'a [f64],
-    pub(crate) e_out: &'a mut [f64],
-    pub(crate) residual: &'a mut [f64],
+/// [`row_dots_f32`] on a chosen back end.
+pub(crate) struct RowDotsF32<'a> {
+    pub(crate) rows: &'a [f32],
+    pub(crate) x: &'a [f32],
+    pub(crate) scale: &'a [f64],
+    pub(crate) x_scale: f64,
+    pub(crate) out: &'a mut [f64],
 }
 
-impl WithSimd for CholeskyRow<'_> {
+impl WithSimd for RowDotsF32<'_> {
     type Output = ();
 
     #[inline(always)]
-    fn with_simd<S: Simd>(self, _simd: S) {
-        let Self { c, n, j, dj2, sims, e_out, residual } = self;
-        assert!(
-            j < n && c.len() % n == 0 && sims.len() == n && e_out.len() == n && residual.len() == n,
-            "cholesky_row_into: shape mismatch"
-        );
-        debug_assert!(dj2 > 0.0, "pivot residual must be positive");
-        let rows = c.len() / n;
-        let inv_dj = 1.0 / dj2.sqrt();
-        let mut i0 = 0;
-        while i0 + ITEM_BLOCK <= n {
-            let mut acc = [0.0_f64; ITEM_BLOCK];
-            for t in 0..rows {
-                let row = &c[t * n..(t + 1) * n];
-                let a = row[j];
-                let block = &row[i0..i0 + ITEM_BLOCK];
-                for b in 0..ITEM_BLOCK {
-                    acc[b] += a * block[b];
+    fn with_simd<S: Simd>(self, simd: S) {
+        let Self { rows, x, scale, x_scale, out } = self;
+        let (n, d) = (out.len(), x.len());
+        assert!(d > 0 && rows.len() == n * d && scale.len() == n, "row_dots_f32: shape mismatch");
+        let (xv, xt) = S::as_simd_f32s(x);
+        let zero = simd.splat_f32s(0.0);
+        let blocks = n / ROW_BLOCK;
+        for blk in 0..blocks {
+            let base = blk * ROW_BLOCK;
+            let r: [&[f32]; ROW_BLOCK] = std::array::from_fn(|b| &rows[(base + b) * d..(base + b + 1) * d]);
+            let rv: [&[S::f32s]; ROW_BLOCK] = std::array::from_fn(|b| S::as_simd_f32s(r[b]).0);
+            let mut acc = [zero; ROW_BLOCK];
+            for (c, &xc) in xv.iter().enumerate() {
+                for b in 0..ROW_BLOCK {
+                    acc[b] = simd.mul_add_e_f32s(rv[b][c], xc, acc[b]);
                 }
             }
-            for b in 0..ITEM_BLOCK {
-                let i = i0 + b;
-                let e = (sims[i] - acc[b]) * inv_dj;
-                e_out[i] = e;
-                residual[i] -= e * e;
+            for b in 0..ROW_BLOCK {
+                let tail: f32 = S::as_simd_f32s(r[b]).1.iter().zip(xt).map(|(a, b)| a * b).sum();
+                out[base + b] = f64::from(simd.reduce_sum_f32s(acc[b]) + tail) * scale[base + b] * x_scale;
             }
-            i0 += ITEM_BLOCK;
         }
-        for i in i0..n {
-            let mut acc = 0.0;
-            for t in 0..rows {
-                acc += c[t * n + j] * c[t * n + i];
+        for i in blocks * ROW_BLOCK..n {
+            let (rv, rt) = S::as_simd_f32s(&rows[i * d..(i + 1) * d]);
+            let mut acc = zero;
+            for (&a, &b) in rv.iter().zip(xv) {
+                acc = simd.mul_add_e_f32s(a, b, acc);
             }
-            let e = (sims[i] - acc) * inv_dj;
-            e_out[i] = e;
-            residual[i] -= e * e;
+            let tail: f32 = rt.iter().zip(xt).map(|(a, b)| a * b).sum();
+            out[i] = f64::from(simd.reduce_sum_f32s(acc) + tail) * scale[i] * x_scale;
         }
     }
 }
@@ -196,44 +288,62 @@ mod tests {
     }
 
     #[test]
-    fn sims_match_naive_and_scalar_path_bit_for_bit() {
+    fn f64_dots_match_naive_on_both_back_ends() {
         let mut seed = 7;
-        for &(n, d) in &[(1, 1), (3, 5), (4, 8), (9, 17), (33, 64), (7, 130)] {
-            let rows: Vec<f32> = (0..n * d).map(|_| lcg(&mut seed)).collect();
-            let x: Vec<f64> = (0..d).map(|_| f64::from(lcg(&mut seed))).collect();
+        for &(n, len, stride) in
+            &[(0, 3, 3), (1, 1, 1), (3, 5, 7), (4, 8, 8), (9, 17, 20), (33, 64, 64), (7, 130, 131)]
+        {
+            let m: Vec<f64> = (0..n * stride + len).map(|_| f64::from(lcg(&mut seed))).collect();
+            let x: Vec<f64> = (0..len).map(|_| f64::from(lcg(&mut seed))).collect();
             let scale: Vec<f64> = (0..n).map(|i| 1.0 + i as f64 / 8.0).collect();
-            let mut fast = vec![0.0; n];
-            let mut scalar = vec![0.0; n];
-            sims_into(&rows, &x, &scale, 0.5, &mut fast);
-            Sims { rows: &rows, x: &x, scale: &scale, x_scale: 0.5, out: &mut scalar }
+            let (mut fast, mut scalar) = (vec![0.0; n], vec![0.0; n]);
+            row_dots_f64(&m, stride, &x, &scale, 0.5, &mut fast);
+            RowDotsF64 { m: &m, stride, x: &x, scale: &scale, x_scale: 0.5, out: &mut scalar }
                 .with_simd(Scalar::new());
             for i in 0..n {
-                let naive = (0..d).map(|t| f64::from(rows[i * d + t]) * x[t]).sum::<f64>() * scale[i] * 0.5;
-                assert!((fast[i] - naive).abs() < 1e-12, "n={n} d={d} i={i}");
-                assert_eq!(fast[i].to_bits(), scalar[i].to_bits(), "dispatch paths differ");
+                let naive = (0..len).map(|t| m[i * stride + t] * x[t]).sum::<f64>() * scale[i] * 0.5;
+                assert!((fast[i] - naive).abs() < 1e-12, "n={n} len={len} i={i}");
+                assert!((scalar[i] - naive).abs() < 1e-12, "scalar back end, n={n} len={len} i={i}");
             }
         }
     }
 
     #[test]
-    fn cholesky_row_matches_naive_and_scalar_path() {
-        let mut seed = 11;
-        for &(n, rows) in &[(1, 0), (5, 2), (32, 3), (70, 9)] {
-            let c: Vec<f64> = (0..n * rows).map(|_| f64::from(lcg(&mut seed))).collect();
-            let sims: Vec<f64> = (0..n).map(|_| f64::from(lcg(&mut seed))).collect();
-            let j = n / 2;
-            let (mut e1, mut r1) = (vec![0.0; n], vec![1.0; n]);
-            let (mut e2, mut r2) = (vec![0.0; n], vec![1.0; n]);
-            cholesky_row_into(&c, n, j, 0.7, &sims, &mut e1, &mut r1);
-            CholeskyRow { c: &c, n, j, dj2: 0.7, sims: &sims, e_out: &mut e2, residual: &mut r2 }
+    fn widened_sims_match_naive_on_both_bodies() {
+        let mut seed = 3;
+        for &(n, d) in &[(1, 1), (3, 5), (4, 8), (9, 17), (33, 64), (7, 130)] {
+            let rows: Vec<f32> = (0..n * d).map(|_| lcg(&mut seed)).collect();
+            let x: Vec<f64> = (0..d).map(|_| f64::from(lcg(&mut seed))).collect();
+            let scale: Vec<f64> = (0..n).map(|i| 1.0 + i as f64 / 8.0).collect();
+            let (mut fast, mut portable) = (vec![0.0; n], vec![0.0; n]);
+            sims_into(&rows, &x, &scale, 0.5, &mut fast);
+            SimsPortable { rows: &rows, x: &x, scale: &scale, x_scale: 0.5, out: &mut portable }
                 .with_simd(Scalar::new());
             for i in 0..n {
-                let dot: f64 = (0..rows).map(|t| c[t * n + j] * c[t * n + i]).sum();
-                let e = (sims[i] - dot) / 0.7_f64.sqrt();
-                assert!((e1[i] - e).abs() < 1e-12);
-                assert!((r1[i] - (1.0 - e * e)).abs() < 1e-12);
-                assert_eq!(e1[i].to_bits(), e2[i].to_bits());
-                assert_eq!(r1[i].to_bits(), r2[i].to_bits());
+                let naive = (0..d).map(|t| f64::from(rows[i * d + t]) * x[t]).sum::<f64>() * scale[i] * 0.5;
+                assert!(
+                    (fast[i] - naive).abs() < 1e-12 && (portable[i] - naive).abs() < 1e-12,
+                    "n={n} d={d}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn f32_dots_match_naive_on_both_back_ends() {
+        let mut seed = 11;
+        for &(n, d) in &[(1, 1), (3, 5), (4, 8), (9, 17), (33, 64), (7, 130)] {
+            let rows: Vec<f32> = (0..n * d).map(|_| lcg(&mut seed)).collect();
+            let x: Vec<f32> = (0..d).map(|_| lcg(&mut seed)).collect();
+            let scale = vec![2.0; n];
+            let (mut fast, mut scalar) = (vec![0.0; n], vec![0.0; n]);
+            row_dots_f32(&rows, &x, &scale, 1.0, &mut fast);
+            RowDotsF32 { rows: &rows, x: &x, scale: &scale, x_scale: 1.0, out: &mut scalar }
+                .with_simd(Scalar::new());
+            for i in 0..n {
+                let naive = 2.0 * (0..d).map(|t| f64::from(rows[i * d + t]) * f64::from(x[t])).sum::<f64>();
+                // f32 sums of d products of magnitude < 0.25: well inside 1e-5.
+                assert!((fast[i] - naive).abs() < 1e-5 && (scalar[i] - naive).abs() < 1e-5, "n={n} d={d}");
             }
         }
     }
