@@ -1,6 +1,7 @@
 //! `dpp`: greedy MAP inference for a quality-weighted DPP, with an incremental Cholesky factor.
 
-use super::similarity::{row_dots_f64, sims_into};
+use pulp::{Arch, Simd, WithSimd};
+
 use super::{allowed, fill_by_score, relevance_selection, take, Diversifier, KernelError, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
@@ -26,9 +27,18 @@ pub const EPSILON: f64 = 1e-9;
 /// candidate is above it; (2) `S` is the cosine of the stored f32 rows taken in f64 (inverse norms
 /// kept exactly), so `S_ii = 1` and `S` stays a PSD Gram matrix despite f32 rounding.
 ///
+/// Evaluated lazily (M. Minoux, "Accelerated greedy algorithms for maximizing submodular set
+/// functions", Optimization Techniques, LNCS 7, 1978): the objective is a modular term plus
+/// `λ·ln det`, which is submodular, so each candidate's value only falls as the slate grows. A
+/// max-heap holds stale values as upper bounds; only the candidate on top is brought up to date
+/// (its missing factor entries computed), and it is taken once its fresh value still beats every
+/// other bound. The picks are exactly those of the eager algorithm (same objective, same tie rule).
+///
 /// # Complexity
-/// O(N·k·(d + k)) time: per pick one similarity row `S_{·,j}` (O(N·d)) and one factor column
-/// (O(N·|S|)); the N×N kernel is never built. O(N·k) extra memory for the factor.
+/// Worst case O(N·k·(d + k)) time, as the eager form: every candidate refreshed at every step.
+/// Typically far less, since candidates whose bound sinks below the winners are never refreshed.
+/// O(N·(k + d)) extra memory (factor rows and f64 copies of the unit rows); the N×N kernel is
+/// never built. Heap operations add O(log N) per pop.
 ///
 /// # Invariants
 /// `S` is symmetric PSD by construction (a Gram matrix); the factor is lower-triangular with a
@@ -38,11 +48,10 @@ pub const EPSILON: f64 = 1e-9;
 ///
 /// # Numerical notes
 /// Similarity, factor and residuals are f64, which keeps an exhausted residual near 1e-15 instead
-/// of the ~1e-7 noise f32 sums would leave, so `EPSILON` means what it says. Embedding rows stay
-/// f32 and are widened on load (streaming half the bytes of f64 rows measured ~1.7× faster). The
-/// factor is stored row per candidate (`c_i` contiguous) so `⟨c_j, c_i⟩` over all i is one
-/// streaming pass (measured ~2× faster than one row per pick).
-/// Ties go to the lower index.
+/// of the ~1e-7 noise f32 sums would leave, so `EPSILON` means what it says. The unit rows are
+/// widened to f64 once per call (refreshes read rows in heap order, where widening on every read
+/// would repeat the conversion). The factor is stored row per candidate, `c_i` contiguous.
+/// Heap order is value, then lower index, so ties go to the lower index as everywhere.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct Dpp;
 
@@ -61,58 +70,148 @@ impl Diversifier for Dpp {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
-        let n = input.len();
+        let (n, d) = (input.len(), emb.dim());
         let m = params.k().min(n);
         let s = input.normalized();
         ws.reset(n, input.group_count());
-        ws.sims.resize(n, 0.0);
-        ws.dots.resize(n, 0.0);
-        // Factor rows: candidate i's c_i is factor[i·stride .. i·stride + step].
+        // Unit rows in f64, once per call: refreshes touch rows in heap order, not streaming order.
+        ws.wide.clear();
+        ws.wide.reserve(n * d);
+        for (row, &inv) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()) {
+            ws.wide.extend(row.iter().map(|&x| f64::from(x) * inv));
+        }
+        // Factor rows: candidate i's c_i is factor[i·stride ..][..filled[i]].
         let stride = m.saturating_sub(1).max(1);
         ws.factor.clear();
         ws.factor.resize(n * stride, 0.0);
-        // d_i² starts at S_ii = 1 (unit rows, see `Embeddings::cosine`).
+        ws.filled.clear();
+        ws.filled.resize(n, 0);
         ws.running.clear();
         ws.running.resize(n, 1.0);
+        ws.query.clear(); // 1/d_j of every pick, in pick order
+        ws.heap.clear();
+        ws.heap.extend((0..n).map(|i| Bound { value: (1.0 - lambda) * s[i], index: i }));
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
-        for step in 0..m {
-            let mut best: Option<(usize, f64)> = None;
-            for i in 0..n {
-                let d2 = ws.running[i];
-                if ws.taken[i] || d2 < EPSILON || !allowed(input, params, &ws.group_taken, i) {
-                    continue;
-                }
-                let obj = (1.0 - lambda) * s[i] + lambda * d2.ln();
-                if best.is_none_or(|(_, b)| obj > b) {
-                    best = Some((i, obj));
-                }
-            }
-            let Some((j, _)) = best else {
+        while sel.indices.len() < m {
+            let step = sel.indices.len();
+            let Some(top) = ws.heap.pop() else {
                 sel.exhausted_at = Some(step);
                 fill_by_score(input, params, ws, m, &mut sel);
                 break;
             };
-            let dj2 = ws.running[j];
-            take(input, ws, &mut sel, j, dj2);
-            if step + 1 == m {
-                break;
+            let i = top.index;
+            // Caps only tighten and residuals only shrink, so a candidate dropped here is out for good.
+            if !allowed(input, params, &ws.group_taken, i) {
+                continue;
             }
-            // Algorithm 1, lines 6–7: S_{·,j}, then ⟨c_j, c_i⟩ for every i, then e_i and d_i².
-            ws.query.clear();
-            ws.query.extend(emb.row(j).iter().map(|&x| f64::from(x)));
-            sims_into(emb.as_slice(), &ws.query, emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
-            ws.query.clear();
-            ws.query.extend_from_slice(&ws.factor[j * stride..j * stride + step]);
-            row_dots_f64(&ws.factor, stride, &ws.query, &[], 1.0, &mut ws.dots);
-            let inv_dj = 1.0 / dj2.sqrt();
-            for i in 0..n {
-                let e = (ws.sims[i] - ws.dots[i]) * inv_dj;
-                ws.factor[i * stride + step] = e;
-                ws.running[i] -= e * e;
+            if ws.filled[i] < step {
+                let refresh = Refresh {
+                    wide: &ws.wide,
+                    d,
+                    factor: &mut ws.factor,
+                    stride,
+                    i,
+                    from: ws.filled[i],
+                    picks: &sel.indices,
+                    inv_dj: &ws.query,
+                    d2: &mut ws.running[i],
+                };
+                Arch::new().dispatch(refresh);
+                ws.filled[i] = step;
             }
-            debug_assert!(ws.running[j].abs() < 1e-6, "picked item's residual must vanish");
+            let d2 = ws.running[i];
+            if d2 < EPSILON {
+                continue;
+            }
+            let fresh = Bound { value: (1.0 - lambda) * s[i] + lambda * d2.ln(), index: i };
+            debug_assert!(fresh.value <= top.value + 1e-9, "lazy bound grew: residuals must not increase");
+            if ws.heap.peek().is_some_and(|next| *next > fresh) {
+                ws.heap.push(fresh);
+                continue;
+            }
+            take(input, ws, &mut sel, i, d2);
+            ws.query.push(1.0 / d2.sqrt());
         }
         Ok(sel)
     }
+}
+
+/// A stale upper bound on a candidate's objective. Ordered by value, then lower index first, so
+/// the heap's top is the greedy choice among bounds.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Bound {
+    value: f64,
+    index: usize,
+}
+
+impl PartialEq for Bound {
+    fn eq(&self, other: &Self) -> bool {
+        self.cmp(other).is_eq()
+    }
+}
+
+impl Eq for Bound {}
+
+impl PartialOrd for Bound {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+impl Ord for Bound {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        self.value.total_cmp(&other.value).then(other.index.cmp(&self.index))
+    }
+}
+
+/// Brings candidate `i`'s factor row and residual up to date with picks `from..picks.len()`:
+/// Algorithm 1's update `e = (S_ij − ⟨c_j, c_i⟩)/d_j; c_i ← [c_i, e]; d_i² ← d_i² − e²` for each
+/// pick `j` it has not seen yet, in pick order. O(Δ·(d + k)) for Δ missed picks.
+struct Refresh<'a> {
+    wide: &'a [f64],
+    d: usize,
+    factor: &'a mut [f64],
+    stride: usize,
+    i: usize,
+    from: usize,
+    picks: &'a [usize],
+    inv_dj: &'a [f64],
+    d2: &'a mut f64,
+}
+
+impl WithSimd for Refresh<'_> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, simd: S) {
+        let Self { wide, d, factor, stride, i, from, picks, inv_dj, d2 } = self;
+        let xi = &wide[i * d..(i + 1) * d];
+        for (q, &j) in picks.iter().enumerate().skip(from) {
+            let cos = dot(simd, xi, &wide[j * d..(j + 1) * d]);
+            let inner = dot(simd, &factor[j * stride..j * stride + q], &factor[i * stride..i * stride + q]);
+            let e = (cos - inner) * inv_dj[q];
+            factor[i * stride + q] = e;
+            *d2 -= e * e;
+        }
+    }
+}
+
+/// f64 dot product with two FMA chains.
+#[inline(always)]
+fn dot<S: Simd>(simd: S, a: &[f64], b: &[f64]) -> f64 {
+    let (av, at) = S::as_simd_f64s(a);
+    let (bv, bt) = S::as_simd_f64s(b);
+    let (mut acc0, mut acc1) = (simd.splat_f64s(0.0), simd.splat_f64s(0.0));
+    let mut pairs_a = av.chunks_exact(2);
+    let mut pairs_b = bv.chunks_exact(2);
+    for (pa, pb) in (&mut pairs_a).zip(&mut pairs_b) {
+        acc0 = simd.mul_add_e_f64s(pa[0], pb[0], acc0);
+        acc1 = simd.mul_add_e_f64s(pa[1], pb[1], acc1);
+    }
+    for (&x, &y) in pairs_a.remainder().iter().zip(pairs_b.remainder()) {
+        acc0 = simd.mul_add_e_f64s(x, y, acc0);
+    }
+    let tail: f64 = at.iter().zip(bt).map(|(x, y)| x * y).sum();
+    simd.reduce_sum_f64s(simd.add_f64s(acc0, acc1)) + tail
 }

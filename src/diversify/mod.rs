@@ -94,8 +94,12 @@ pub struct Workspace {
     sims: Vec<f64>,
     /// A copy of the vector being dotted against every row (a unit row or a factor row).
     query: Vec<f64>,
-    /// `⟨c_j, c_i⟩` for every candidate i.
-    dots: Vec<f64>,
+    /// DPP: unit rows widened to f64, row-major N × d.
+    wide: Vec<f64>,
+    /// DPP: how many factor entries of each candidate are up to date.
+    filled: Vec<usize>,
+    /// DPP: stale upper bounds of the lazy greedy.
+    heap: std::collections::BinaryHeap<dpp::Bound>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
     /// DPP Cholesky factor, one row of up to k − 1 entries per candidate.
