@@ -91,7 +91,23 @@ proptest! {
     fn fast_kernels_equal_slow_references((cands, k, lambda) in arb_slate()) {
         let input = slate(cands);
         let p = params(k, lambda);
-        prop_assert_eq!(run(&Mmr, &input, &p), reference::mmr(&input, &p));
+        // MMR sums in f32 (error ~1e-7) and the reference in f64, so a pick may differ only where
+        // two objectives are within 1e-5 of each other: check each fast pick is the reference's
+        // argmax, given the fast prefix, up to that gap.
+        let fast_mmr = run(&Mmr, &input, &p);
+        if lambda == 0.0 {
+            prop_assert_eq!(&fast_mmr, &reference::mmr(&input, &p));
+        }
+        let e = input.embeddings().unwrap();
+        for (step, &pick) in fast_mmr.iter().enumerate() {
+            let prefix = &fast_mmr[..step];
+            let obj = |i: usize| {
+                let pen = prefix.iter().map(|&j| e.cosine(i, j)).fold(f64::NEG_INFINITY, f64::max);
+                (1.0 - lambda) * input.normalized()[i] - lambda * if prefix.is_empty() { 0.0 } else { pen }
+            };
+            let best = (0..input.len()).filter(|i| !prefix.contains(i)).map(obj).fold(f64::NEG_INFINITY, f64::max);
+            prop_assert!(obj(pick) >= best - 1e-5, "step {step}: pick {pick} at {} vs best {best}", obj(pick));
+        }
         let fast = Dpp.select(&input, &p, &mut Workspace::new()).unwrap();
         let (slow, slow_gains) = reference::dpp(&input, &p);
         prop_assert_eq!(&fast.indices, &slow);
@@ -162,7 +178,7 @@ fn nalgebra_greedy_dpp(input: &RerankInput, k: usize, lambda: f64) -> Vec<usize>
         for i in (0..n).filter(|i| !chosen.contains(i)) {
             let idx: Vec<usize> = chosen.iter().copied().chain([i]).collect();
             let det = gram.select_rows(&idx).select_columns(&idx).determinant();
-            if !(det > 0.0) || (det.ln() - logdet) < EPSILON.ln() {
+            if det.is_nan() || det <= 0.0 || (det.ln() - logdet) < EPSILON.ln() {
                 continue;
             }
             let obj = (1.0 - lambda) * s[i] + lambda * (det.ln() - logdet);
