@@ -2,7 +2,7 @@
 
 use pulp::{Arch, Simd, WithSimd};
 
-use super::{allowed, fill_by_score, relevance_selection, take, Diversifier, KernelError, Workspace};
+use super::{allowed, fill_by_score, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
 /// Residual `d_i²` below which a candidate adds no new direction: the kernel's numerical rank is
@@ -134,34 +134,6 @@ impl Diversifier for Dpp {
             ws.query.push(1.0 / d2.sqrt());
         }
         Ok(sel)
-    }
-}
-
-/// A stale upper bound on a candidate's objective. Ordered by value, then lower index first, so
-/// the heap's top is the greedy choice among bounds.
-#[derive(Debug, Clone, Copy)]
-pub(crate) struct Bound {
-    value: f64,
-    index: usize,
-}
-
-impl PartialEq for Bound {
-    fn eq(&self, other: &Self) -> bool {
-        self.cmp(other).is_eq()
-    }
-}
-
-impl Eq for Bound {}
-
-impl PartialOrd for Bound {
-    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
-        Some(self.cmp(other))
-    }
-}
-
-impl Ord for Bound {
-    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
-        self.value.total_cmp(&other.value).then(other.index.cmp(&self.index))
     }
 }
 

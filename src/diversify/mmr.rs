@@ -1,7 +1,8 @@
 //! `mmr`: Maximal Marginal Relevance with a running max-similarity per candidate.
 
 use super::similarity::row_dots_f32;
-use super::{allowed, relevance_selection, take, Diversifier, KernelError, Workspace};
+use super::{allowed, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
+use pulp::{Arch, Simd, WithSimd};
 use crate::model::{Params, RerankInput, Selection};
 
 /// Greedy MMR: each step picks `argmax_i (1 − λ)·s_i − λ·max_{j∈S} cos(i, j)`.
@@ -14,9 +15,16 @@ use crate::model::{Params, RerankInput, Selection};
 /// documents and producing summaries", SIGIR 1998, the MMR formula in section 2. Similarity to the
 /// query is replaced by the caller's score, as is usual for recommendation.
 ///
+/// Evaluated lazily (M. Minoux, "Accelerated greedy algorithms for maximizing submodular set
+/// functions", Optimization Techniques, LNCS 7, 1978): from the second pick on, a candidate's value
+/// only falls (its running max-similarity only rises), so a max-heap of stale values serves as
+/// upper bounds and only the candidate on top is brought up to date. The first pick's similarity
+/// row is computed for everyone, which seeds exact values. Picks equal the eager algorithm's.
+///
 /// # Complexity
-/// O(N·k·d) time: one similarity row `S_{·,j}` per pick, folded into a running maximum, so a step
-/// costs O(N·d) rather than O(N·|S|·d). O(N + d) extra memory, reused through the [`Workspace`].
+/// Worst case O(N·k·d) time, as the eager form with a running maximum (one similarity row per
+/// pick, not O(N·|S|·d) per step); typically far less. O(N) extra memory plus the heap, reused
+/// through the [`Workspace`].
 ///
 /// # Invariants
 /// The running max-similarity of a candidate never decreases; output has no duplicates and at most
@@ -48,36 +56,94 @@ impl Diversifier for Mmr {
         let m = params.k().min(n);
         let s = input.normalized();
         ws.reset(n, input.group_count());
-        ws.running.clear();
-        ws.running.resize(n, 0.0);
-        ws.sims.resize(n, 0.0);
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
-        for step in 0..m {
-            let mut best: Option<(usize, f64)> = None;
-            for i in 0..n {
-                if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
-                    continue;
-                }
-                let obj = (1.0 - lambda) * s[i] - lambda * ws.running[i];
-                if best.is_none_or(|(_, b)| obj > b) {
-                    best = Some((i, obj));
-                }
-            }
-            let Some((j, obj)) = best else { break };
-            take(input, ws, &mut sel, j, obj);
-            if step + 1 == m {
-                break;
-            }
-            row_dots_f32(emb.as_slice(), emb.row(j), emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
-            if step == 0 {
-                ws.running.copy_from_slice(&ws.sims);
-            } else {
-                for (r, &x) in ws.running.iter_mut().zip(&ws.sims) {
-                    *r = r.max(x);
-                }
+        // First pick: the max over an empty slate is 0, so the objective is the score term.
+        let mut first: Option<(usize, f64)> = None;
+        for i in 0..n {
+            let obj = (1.0 - lambda) * s[i];
+            if allowed(input, params, &ws.group_taken, i) && first.is_none_or(|(_, b)| obj > b) {
+                first = Some((i, obj));
             }
         }
+        let Some((j, obj)) = first else { return Ok(sel) };
+        take(input, ws, &mut sel, j, obj);
+        if m == 1 {
+            return Ok(sel);
+        }
+        // Its similarity row seeds every running max exactly (values may rise here, when the
+        // first real max-similarity is negative, so bounds start only now).
+        ws.sims.resize(n, 0.0);
+        row_dots_f32(emb.as_slice(), emb.row(j), emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
+        ws.running.clear();
+        ws.running.extend_from_slice(&ws.sims);
+        ws.filled.clear();
+        ws.filled.resize(n, 1);
+        ws.heap.clear();
+        let running = &ws.running;
+        let taken = &ws.taken;
+        ws.heap.extend(
+            (0..n).filter(|&i| !taken[i]).map(|i| Bound { value: (1.0 - lambda) * s[i] - lambda * running[i], index: i }),
+        );
+
+        while sel.indices.len() < m {
+            let step = sel.indices.len();
+            let Some(top) = ws.heap.pop() else { break };
+            let i = top.index;
+            // Caps only tighten, so a candidate dropped here is out for good.
+            if !allowed(input, params, &ws.group_taken, i) {
+                continue;
+            }
+            if ws.filled[i] < step {
+                let refresh = Refresh {
+                    rows: emb.as_slice(),
+                    inv_norm: emb.inv_norms(),
+                    i,
+                    picks: &sel.indices[ws.filled[i]..step],
+                    max_sim: &mut ws.running[i],
+                };
+                Arch::new().dispatch(refresh);
+                ws.filled[i] = step;
+            }
+            let fresh = Bound { value: (1.0 - lambda) * s[i] - lambda * ws.running[i], index: i };
+            debug_assert!(fresh.value <= top.value + 1e-9, "lazy bound grew: max-similarity must not fall");
+            if ws.heap.peek().is_some_and(|next| *next > fresh) {
+                ws.heap.push(fresh);
+                continue;
+            }
+            take(input, ws, &mut sel, i, fresh.value);
+        }
         Ok(sel)
+    }
+}
+
+/// Folds the cosines of candidate `i` with `picks` into its running max-similarity, with the same
+/// f32 arithmetic as one row of `row_dots_f32`. O(|picks|·d).
+struct Refresh<'a> {
+    rows: &'a [f32],
+    inv_norm: &'a [f64],
+    i: usize,
+    picks: &'a [usize],
+    max_sim: &'a mut f64,
+}
+
+impl WithSimd for Refresh<'_> {
+    type Output = ();
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, simd: S) {
+        let Self { rows, inv_norm, i, picks, max_sim } = self;
+        let d = rows.len() / inv_norm.len();
+        let (xv, xt) = S::as_simd_f32s(&rows[i * d..(i + 1) * d]);
+        for &j in picks {
+            let (rv, rt) = S::as_simd_f32s(&rows[j * d..(j + 1) * d]);
+            let mut acc = simd.splat_f32s(0.0);
+            for (&a, &b) in rv.iter().zip(xv) {
+                acc = simd.mul_add_e_f32s(a, b, acc);
+            }
+            let tail: f32 = rt.iter().zip(xt).map(|(a, b)| a * b).sum();
+            let cos = f64::from(simd.reduce_sum_f32s(acc) + tail) * inv_norm[j] * inv_norm[i];
+            *max_sim = max_sim.max(cos);
+        }
     }
 }

@@ -96,10 +96,10 @@ pub struct Workspace {
     query: Vec<f64>,
     /// DPP: unit rows widened to f64, row-major N × d.
     wide: Vec<f64>,
-    /// DPP: how many factor entries of each candidate are up to date.
+    /// Lazy kernels: how many picks each candidate's state has seen.
     filled: Vec<usize>,
-    /// DPP: stale upper bounds of the lazy greedy.
-    heap: std::collections::BinaryHeap<dpp::Bound>,
+    /// Lazy kernels: stale upper bounds.
+    heap: std::collections::BinaryHeap<Bound>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
     /// DPP Cholesky factor, one row of up to k − 1 entries per candidate.
@@ -121,6 +121,34 @@ impl Workspace {
         self.taken.resize(n, false);
         self.group_taken.clear();
         self.group_taken.resize(groups, 0);
+    }
+}
+
+/// A stale upper bound on a candidate's objective. Ordered by value, then lower index first, so
+/// the heap's top is the greedy choice among bounds.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Bound {
+    value: f64,
+    index: usize,
+}
+
+impl PartialEq for Bound {
+    fn eq(&self, other: &Self) -> bool {
+        self.cmp(other).is_eq()
+    }
+}
+
+impl Eq for Bound {}
+
+impl PartialOrd for Bound {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+impl Ord for Bound {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        self.value.total_cmp(&other.value).then(other.index.cmp(&self.index))
     }
 }
 
