@@ -88,7 +88,7 @@ impl Diversifier for Dpp {
         ws.filled.resize(n, 0);
         ws.running.clear();
         ws.running.resize(n, 1.0);
-        ws.query.clear(); // 1/d_j of every pick, in pick order
+        ws.inv_pivot.clear();
         ws.heap.clear();
         ws.heap.extend((0..n).map(|i| Bound { value: (1.0 - lambda) * s[i], index: i }));
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
@@ -114,7 +114,7 @@ impl Diversifier for Dpp {
                     i,
                     from: ws.filled[i],
                     picks: &sel.indices,
-                    inv_dj: &ws.query,
+                    inv_dj: &ws.inv_pivot,
                     d2: &mut ws.running[i],
                 };
                 Arch::new().dispatch(refresh);
@@ -131,7 +131,7 @@ impl Diversifier for Dpp {
                 continue;
             }
             take(input, ws, &mut sel, i, d2);
-            ws.query.push(1.0 / d2.sqrt());
+            ws.inv_pivot.push(1.0 / d2.sqrt());
         }
         Ok(sel)
     }

@@ -92,8 +92,8 @@ pub struct Workspace {
     order: Vec<usize>,
     /// Similarity row `S_{·,j}` of the item just picked.
     sims: Vec<f64>,
-    /// A copy of the vector being dotted against every row (a unit row or a factor row).
-    query: Vec<f64>,
+    /// DPP: `1/d_j` of every pick, in pick order.
+    inv_pivot: Vec<f64>,
     /// DPP: unit rows widened to f64, row-major N × d.
     wide: Vec<f64>,
     /// Lazy kernels: how many picks each candidate's state has seen.

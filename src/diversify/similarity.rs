@@ -7,8 +7,9 @@
 //! so each load of the vector feeds four independent FMA chains.
 //!
 //! Measured on the dev machine: LLVM's auto-vectorisation of plain blocked loops reached 2–6
-//! GMAC/s here (it transposed across rows or spilled the accumulators); this body runs at 76–94 %
-//! of a tuned library GEMV of the same shape (README).
+//! GMAC/s here (it transposed across rows or spilled the accumulators); this body ran at 76–94 %
+//! of a tuned library GEMV of the same shape when MMR still computed one row per pick. Lazy MMR
+//! now computes one full row per call and refreshes candidates one at a time.
 //!
 //! Precision: MMR ranks by `score − max cos` and tolerates f32 sums (error ~1e-7). DPP, whose
 //! `EPSILON = 1e-9` cut-off f32 noise would swamp, keeps its own f64 loops in `dpp.rs`.
