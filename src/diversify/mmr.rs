@@ -73,10 +73,9 @@ impl Diversifier for Mmr {
         }
         // Its similarity row seeds every running max exactly (values may rise here, when the
         // first real max-similarity is negative, so bounds start only now).
-        ws.sims.resize(n, 0.0);
-        row_dots_f32(emb.as_slice(), emb.row(j), emb.inv_norms(), emb.inv_norms()[j], &mut ws.sims);
         ws.running.clear();
-        ws.running.extend_from_slice(&ws.sims);
+        ws.running.resize(n, 0.0);
+        row_dots_f32(emb.as_slice(), emb.row(j), emb.inv_norms(), emb.inv_norms()[j], &mut ws.running);
         ws.filled.clear();
         ws.filled.resize(n, 1);
         ws.heap.clear();

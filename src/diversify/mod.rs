@@ -90,8 +90,6 @@ pub struct Workspace {
     taken: Vec<bool>,
     /// Candidate indices in some order (relevance order, per-group queues).
     order: Vec<usize>,
-    /// Similarity row `S_{·,j}` of the item just picked.
-    sims: Vec<f64>,
     /// DPP: `1/d_j` of every pick, in pick order.
     inv_pivot: Vec<f64>,
     /// DPP: unit rows widened to f64, row-major N × d.
@@ -173,13 +171,12 @@ fn by_score(scores: &[f64], a: usize, b: usize) -> std::cmp::Ordering {
 /// O(N + m log m) with a selection step, O(N log N) when `m` is close to N.
 fn relevance_prefix(scores: &[f64], m: usize, out: &mut Vec<usize>) {
     let n = scores.len();
-    out.clear();
-    out.extend(0..n);
     let m = m.min(n);
+    out.clear();
     if m == 0 {
-        out.clear();
         return;
     }
+    out.extend(0..n);
     if m < n {
         out.select_nth_unstable_by(m - 1, |&a, &b| by_score(scores, a, b));
         out.truncate(m);
