@@ -59,21 +59,37 @@ pub fn distinct_categories(input: &RerankInput, slate: &[usize]) -> usize {
 /// Diversification", WWW 2005 (intra-list similarity).
 ///
 /// # Complexity
-/// O(|slate|²·d) time, no allocation.
+/// O(|slate|·d) time and one d-length buffer, not the O(|slate|²·d) of the pairwise sum: for
+/// unit vectors u_i, Σ_{i<j} cos(i, j) = (‖Σ u_i‖² − Σ ‖u_i‖²) / 2. At the largest allowed
+/// request (k = 1000, d = 4096) that is 4 M multiply-adds instead of 2 G.
+///
+/// # Numerical notes
+/// Rows are rescaled by their exact f64 inverse norms and summed in f64. The identity subtracts
+/// two sums of size about |slate|², so the result carries an absolute error of about
+/// |slate|²·1e-16 on the pair sum, i.e. ~1e-16 relative on the mean; the unit tests hold it to
+/// the pairwise brute force within 1e-12.
 #[must_use]
 pub fn intra_list_distance(input: &RerankInput, slate: &[usize]) -> Option<f64> {
     let emb = input.embeddings()?;
     if slate.len() < 2 {
         return Some(0.0);
     }
-    let mut total = 0.0;
-    for (a, &i) in slate.iter().enumerate() {
-        for &j in &slate[a + 1..] {
-            total += 1.0 - emb.cosine(i, j);
+    let mut sum = vec![0.0_f64; emb.dim()];
+    let mut self_dots = 0.0;
+    for &i in slate {
+        let inv = emb.inv_norms()[i];
+        let mut sq = 0.0;
+        for (s, &x) in sum.iter_mut().zip(emb.row(i)) {
+            let u = f64::from(x) * inv;
+            *s += u;
+            sq += u * u;
         }
+        self_dots += sq;
     }
+    let norm2: f64 = sum.iter().map(|s| s * s).sum();
+    let pair_sims = (norm2 - self_dots) / 2.0;
     let pairs = (slate.len() * (slate.len() - 1) / 2) as f64;
-    Some(total / pairs)
+    Some(1.0 - pair_sims / pairs)
 }
 
 /// Item coverage: distinct items exposed ÷ distinct items offered (0 when nothing was offered).
@@ -120,6 +136,57 @@ mod tests {
 
     // Known values are from the definitions (common practice); the scipy-generated fixtures in
     // tests/fixtures cover the rest.
+    fn slate_of(rows: &[Vec<f32>]) -> RerankInput {
+        let cands = rows
+            .iter()
+            .enumerate()
+            .map(|(i, e)| crate::CandidateInput {
+                id: i.to_string(),
+                score: 1.0,
+                category: None,
+                embedding: Some(e.clone()),
+            })
+            .collect();
+        RerankInput::new(cands, crate::ScoreTransform::MinMax, true, &crate::Limits::default()).unwrap()
+    }
+
+    /// The pairwise definition, O(k²·d): the brute force the fast identity must match.
+    fn ild_pairwise(input: &RerankInput, slate: &[usize]) -> f64 {
+        let emb = input.embeddings().unwrap();
+        let mut total = 0.0;
+        for (a, &i) in slate.iter().enumerate() {
+            for &j in &slate[a + 1..] {
+                total += 1.0 - emb.cosine(i, j);
+            }
+        }
+        total / (slate.len() * (slate.len() - 1) / 2) as f64
+    }
+
+    #[test]
+    fn ild_worked_cases_and_pairwise_brute_force() {
+        // Orthogonal pair: distance 1; identical pair: 0; opposite pair: 2 (by the definition).
+        let input = slate_of(&[vec![1.0, 0.0], vec![0.0, 3.0], vec![2.0, 0.0], vec![-1.0, 0.0]]);
+        assert!((intra_list_distance(&input, &[0, 1]).unwrap() - 1.0).abs() < 1e-12);
+        assert!(intra_list_distance(&input, &[0, 2]).unwrap().abs() < 1e-12);
+        assert!((intra_list_distance(&input, &[0, 3]).unwrap() - 2.0).abs() < 1e-12);
+        assert_eq!(intra_list_distance(&input, &[1]), Some(0.0));
+
+        let mut state = 0x9e37_79b9_7f4a_7c15_u64;
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 40) as f32 / (1u64 << 24) as f32 - 0.5
+        };
+        for (n, d) in [(2, 1), (7, 3), (50, 16), (200, 64)] {
+            let rows: Vec<Vec<f32>> = (0..n).map(|_| (0..d).map(|_| next()).collect()).collect();
+            let input = slate_of(&rows);
+            let slate: Vec<usize> = (0..n).collect();
+            let (fast, slow) = (intra_list_distance(&input, &slate).unwrap(), ild_pairwise(&input, &slate));
+            assert!((fast - slow).abs() < 1e-12, "n={n} d={d}: {fast} vs {slow}");
+        }
+    }
+
     #[test]
     fn entropy_known_values() {
         assert!((entropy_bits(&[1, 1, 1, 1]) - 2.0).abs() < 1e-12);
