@@ -40,9 +40,18 @@
 
 #![forbid(unsafe_code)]
 
+pub mod batch;
+pub mod cli;
+pub mod config;
 pub mod diversify;
+pub mod engine;
+pub mod http;
 pub mod measures;
+pub mod metrics;
 pub mod model;
+pub mod pool;
+pub mod shutdown;
+pub mod wire;
 
 pub use diversify::{Diversifier, KernelError, Workspace};
 pub use model::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Selection, ValidationError};

@@ -1,0 +1,61 @@
+//! Command-line types (clap derive) and nothing else; `main.rs` acts on them.
+
+use std::net::SocketAddr;
+use std::path::PathBuf;
+
+use clap::{Parser, Subcommand, ValueEnum};
+
+/// Re-ranks scored candidate lists into diverse slates.
+#[derive(Debug, Parser)]
+#[command(name = "medley", version, about)]
+pub struct Cli {
+    /// Log line format.
+    #[arg(long, global = true, value_enum, default_value_t = LogFormat::Text)]
+    pub log_format: LogFormat,
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// Log line format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum LogFormat {
+    /// Human-readable lines.
+    Text,
+    /// One JSON object per line.
+    Json,
+}
+
+/// Subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Serve the HTTP API (embedded default config unless --config is given).
+    Serve {
+        /// Config file (TOML); without it the embedded config/default.toml is served.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Public listener address; overrides server.listen.
+        #[arg(long)]
+        listen: Option<SocketAddr>,
+        /// Private (metrics, health, admin) listener address; overrides server.admin_listen.
+        #[arg(long)]
+        admin_listen: Option<SocketAddr>,
+    },
+    /// Re-rank a JSONL file of requests into a JSONL file of responses, on all cores.
+    Rerank {
+        /// Input file of one request per line, or - for stdin.
+        #[arg(long, default_value = "-")]
+        input: String,
+        /// Output file, or - for stdout.
+        #[arg(long, default_value = "-")]
+        output: String,
+        /// Config file whose slices serve the requests (default: the embedded config).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
+    /// Validate a config file and print what it would serve; exit 1 if it is invalid.
+    CheckConfig {
+        /// The config file (TOML).
+        file: PathBuf,
+    },
+}

@@ -1,0 +1,351 @@
+//! The engine: a validated [`Config`] plus its generation, the unit the service swaps whole.
+//!
+//! [`Engine::prepare`] is the one place a wire request becomes validated input: it resolves the
+//! slice and its defaults, applies per-request overrides, decodes base64 embeddings and builds
+//! [`RerankInput`] and [`Params`]. [`Prepared::run`] is synchronous and pure (kernel plus
+//! diversity measures), so the HTTP handlers run it on the pool and the batch subcommand calls it
+//! directly. Every failure is a [`RequestError`] carrying a stable code and the JSON path at
+//! fault; the HTTP layer only adds a status.
+
+use crate::config::{Config, Slice, DEFAULT_SLICE};
+use crate::diversify::{self, Diversifier, KernelError, Workspace};
+use crate::measures;
+use crate::model::{CandidateInput, Field, Params, RerankInput, Selection, ValidationError};
+use crate::wire::{decode_b64_embedding, Diversity, Item, RerankRequest, RerankResponse};
+
+/// Why one request cannot be served. Codes are part of the wire contract.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum RequestError {
+    /// The body is not JSON.
+    #[error("the body is not valid JSON: {message}")]
+    MalformedJson {
+        /// serde_json's description, with line and column.
+        message: String,
+    },
+    /// JSON of the wrong shape: a wrong type, a missing or repeated field.
+    #[error("{message}")]
+    InvalidField {
+        /// serde_json's description.
+        message: String,
+        /// Path of the field at fault.
+        path: Option<String>,
+    },
+    /// No slice of that name is configured.
+    #[error("unknown slice {name:?}; configured slices: {known}")]
+    UnknownSlice {
+        /// Requested slice.
+        name: String,
+        /// Configured names, comma-separated.
+        known: String,
+    },
+    /// The slice refuses per-request overrides of this field.
+    #[error(
+        "slice {slice:?} is locked: it serves its configured {field} and refuses overrides; drop the field"
+    )]
+    SliceLocked {
+        /// The slice.
+        slice: String,
+        /// `algorithm`, `lambda` or `k`.
+        field: &'static str,
+    },
+    /// No diversifier of that name.
+    #[error("unknown algorithm {name:?}; known: {known}")]
+    UnknownAlgorithm {
+        /// Requested name.
+        name: String,
+        /// Registry names, comma-separated.
+        known: String,
+    },
+    /// `embedding_b64` that does not decode to f32 values.
+    #[error("candidate {index}: embedding_b64 {reason}")]
+    InvalidBase64 {
+        /// Candidate index.
+        index: usize,
+        /// What is wrong.
+        reason: String,
+    },
+    /// Both `embedding` and `embedding_b64` on one candidate.
+    #[error("candidate {index} has both embedding and embedding_b64; send one")]
+    ConflictingEmbedding {
+        /// Candidate index.
+        index: usize,
+    },
+    /// A value check on the slate or its parameters.
+    #[error("{error}")]
+    Invalid {
+        /// The check that failed.
+        error: ValidationError,
+        /// Whether the failing candidate sent its embedding as base64 (for the path).
+        b64: bool,
+    },
+    /// A kernel refused validated input: a bug between validation and kernel.
+    #[error("internal error: {0}")]
+    Kernel(#[from] KernelError),
+}
+
+impl RequestError {
+    /// The stable snake_case code.
+    #[must_use]
+    pub fn code(&self) -> &'static str {
+        match self {
+            Self::MalformedJson { .. } => "malformed_json",
+            Self::InvalidField { .. } => "invalid_field",
+            Self::UnknownSlice { .. } => "unknown_slice",
+            Self::SliceLocked { .. } => "slice_locked",
+            Self::UnknownAlgorithm { .. } => "unknown_algorithm",
+            Self::InvalidBase64 { .. } => "invalid_base64",
+            Self::ConflictingEmbedding { .. } => "conflicting_embedding",
+            Self::Invalid { error, .. } => match error {
+                ValidationError::TooManyCandidates { .. } => "too_many_candidates",
+                ValidationError::DuplicateId { .. } => "duplicate_id",
+                ValidationError::NonFinite { .. } => "non_finite",
+                ValidationError::MissingEmbedding { .. } => "missing_embedding",
+                ValidationError::DimensionMismatch { .. } => "dimension_mismatch",
+                ValidationError::DimensionOutOfRange { .. } => "dimension_out_of_range",
+                ValidationError::ZeroNorm { .. } => "zero_norm_embedding",
+                ValidationError::KOutOfRange { .. } => "k_out_of_range",
+                ValidationError::LambdaOutOfRange { .. } => "lambda_out_of_range",
+            },
+            Self::Kernel(_) => "internal",
+        }
+    }
+
+    /// The JSON path of the field at fault, when one field is.
+    #[must_use]
+    pub fn path(&self) -> Option<String> {
+        let embedding = |index: usize, b64: bool| {
+            Some(format!("candidates[{index}].{}", if b64 { "embedding_b64" } else { "embedding" }))
+        };
+        match self {
+            Self::MalformedJson { .. } | Self::Kernel(_) => None,
+            Self::InvalidField { path, .. } => path.clone(),
+            Self::UnknownSlice { .. } => Some("slice".into()),
+            Self::SliceLocked { field, .. } => Some((*field).into()),
+            Self::UnknownAlgorithm { .. } => Some("algorithm".into()),
+            Self::InvalidBase64 { index, .. } => embedding(*index, true),
+            Self::ConflictingEmbedding { index } => Some(format!("candidates[{index}]")),
+            Self::Invalid { error, b64 } => match *error {
+                ValidationError::TooManyCandidates { .. } => Some("candidates".into()),
+                ValidationError::DuplicateId { index, .. } => Some(format!("candidates[{index}].id")),
+                ValidationError::NonFinite { index, field: Field::Embedding } => embedding(index, *b64),
+                ValidationError::NonFinite { index, field } => {
+                    Some(format!("candidates[{index}].{}", field.name()))
+                }
+                ValidationError::MissingEmbedding { index, .. }
+                | ValidationError::DimensionMismatch { index, .. }
+                | ValidationError::DimensionOutOfRange { index, .. }
+                | ValidationError::ZeroNorm { index } => embedding(index, *b64),
+                ValidationError::KOutOfRange { .. } => Some("k".into()),
+                ValidationError::LambdaOutOfRange { .. } => Some("lambda".into()),
+            },
+        }
+    }
+
+    /// True for errors that are the service's fault, not the caller's.
+    #[must_use]
+    pub fn is_internal(&self) -> bool {
+        matches!(self, Self::Kernel(_))
+    }
+}
+
+/// A validated config and its generation number: what one request reads at its start.
+#[derive(Debug, Clone)]
+pub struct Engine {
+    config: Config,
+    generation: u64,
+}
+
+impl Engine {
+    /// Wraps a validated config.
+    #[must_use]
+    pub fn new(config: Config, generation: u64) -> Self {
+        Self { config, generation }
+    }
+
+    /// The config served.
+    #[must_use]
+    pub fn config(&self) -> &Config {
+        &self.config
+    }
+
+    /// Generation number: 1 for the config loaded at start, +1 per successful swap.
+    #[must_use]
+    pub fn generation(&self) -> u64 {
+        self.generation
+    }
+
+    /// Resolves the slice and validates the request into ready-to-run input.
+    ///
+    /// Checks run in this order, and the first failure is returned: slice, locked overrides,
+    /// algorithm, k, lambda, then candidates in order.
+    ///
+    /// # Errors
+    /// A [`RequestError`] naming the field at fault.
+    pub fn prepare(&self, request: RerankRequest) -> Result<Prepared, RequestError> {
+        let slice_name = request.slice.as_deref().unwrap_or(DEFAULT_SLICE);
+        let slice = self.config.slice(slice_name).ok_or_else(|| RequestError::UnknownSlice {
+            name: slice_name.to_owned(),
+            known: self.config.slices.keys().cloned().collect::<Vec<_>>().join(", "),
+        })?;
+        if slice.locked {
+            let overrides = [
+                ("algorithm", request.algorithm.is_some()),
+                ("lambda", request.lambda.is_some()),
+                ("k", request.k.is_some()),
+            ];
+            if let Some(&(field, _)) = overrides.iter().find(|(_, set)| *set) {
+                return Err(RequestError::SliceLocked { slice: slice.name.clone(), field });
+            }
+        }
+        let algorithm = match request.algorithm.as_deref() {
+            None => slice.algorithm,
+            Some(name) => diversify::by_name(name).ok_or_else(|| RequestError::UnknownAlgorithm {
+                name: name.to_owned(),
+                known: diversify::names().collect::<Vec<_>>().join(", "),
+            })?,
+        };
+        let limits = &self.config.server.limits;
+        let params =
+            Params::new(request.k.unwrap_or(slice.k), request.lambda.unwrap_or(slice.lambda), limits)
+                .map_err(|error| RequestError::Invalid { error, b64: false })?
+                .with_max_per_category(slice.max_per_category);
+
+        if request.candidates.len() > limits.max_candidates {
+            let error = ValidationError::TooManyCandidates {
+                got: request.candidates.len(),
+                max: limits.max_candidates,
+            };
+            return Err(RequestError::Invalid { error, b64: false });
+        }
+        let mut b64 = Vec::with_capacity(request.candidates.len());
+        let mut candidates = Vec::with_capacity(request.candidates.len());
+        for (index, c) in request.candidates.into_iter().enumerate() {
+            b64.push(c.embedding_b64.is_some());
+            let embedding = match (c.embedding, c.embedding_b64) {
+                (Some(_), Some(_)) => return Err(RequestError::ConflictingEmbedding { index }),
+                (Some(e), None) => Some(e),
+                (None, Some(text)) => Some(
+                    decode_b64_embedding(&text)
+                        .map_err(|reason| RequestError::InvalidBase64 { index, reason })?,
+                ),
+                (None, None) => None,
+            };
+            candidates.push(CandidateInput { id: c.id, score: c.score, category: c.category, embedding });
+        }
+        let input = RerankInput::new(candidates, slice.score_transform, algorithm.needs_embeddings(), limits)
+            .map_err(|error| {
+                let b64 = error_index(&error).and_then(|i| b64.get(i).copied()).unwrap_or(false);
+                RequestError::Invalid { error, b64 }
+            })?;
+        Ok(Prepared {
+            request_id: request.request_id,
+            slice: slice.clone(),
+            algorithm,
+            params,
+            k: request.k.unwrap_or(slice.k),
+            input,
+            generation: self.generation,
+        })
+    }
+}
+
+/// The candidate index a validation error is about.
+fn error_index(e: &ValidationError) -> Option<usize> {
+    match *e {
+        ValidationError::DuplicateId { index, .. }
+        | ValidationError::NonFinite { index, .. }
+        | ValidationError::MissingEmbedding { index, .. }
+        | ValidationError::DimensionMismatch { index, .. }
+        | ValidationError::DimensionOutOfRange { index, .. }
+        | ValidationError::ZeroNorm { index } => Some(index),
+        _ => None,
+    }
+}
+
+/// A validated request, ready to run.
+#[derive(Debug, Clone)]
+pub struct Prepared {
+    /// Echoed back.
+    pub request_id: Option<String>,
+    /// The slice serving it (a clone of the snapshot's, so the run needs no config).
+    pub slice: Slice,
+    /// The diversifier.
+    pub algorithm: &'static dyn Diversifier,
+    /// k, lambda, caps.
+    pub params: Params,
+    /// k as requested (echoed).
+    pub k: u64,
+    /// The validated slate.
+    pub input: RerankInput,
+    /// Config generation it was validated against.
+    pub generation: u64,
+}
+
+impl Prepared {
+    /// Estimated kernel work ([`crate::pool::work_estimate`]).
+    #[must_use]
+    pub fn work(&self) -> u64 {
+        let d = self.input.embeddings().map_or(0, |e| e.dim());
+        crate::pool::work_estimate(self.algorithm.name(), self.input.len(), d, self.params.k())
+    }
+
+    /// Runs the diversifier and measures the slate.
+    ///
+    /// # Errors
+    /// [`RequestError::Kernel`] only if validation let through input the kernel refuses (a bug).
+    pub fn run(self, ws: &mut Workspace) -> Result<Reranked, RequestError> {
+        let selection = if self.input.is_empty() {
+            Selection { indices: Vec::new(), gains: Vec::new(), exhausted_at: None }
+        } else {
+            self.algorithm.select(&self.input, &self.params, ws)?
+        };
+        Ok(Reranked { prepared: self, selection })
+    }
+}
+
+/// The outcome of one request.
+#[derive(Debug, Clone)]
+pub struct Reranked {
+    /// What was asked.
+    pub prepared: Prepared,
+    /// What the kernel chose.
+    pub selection: Selection,
+}
+
+impl Reranked {
+    /// Diversity of the chosen slate.
+    #[must_use]
+    pub fn diversity(&self) -> Diversity {
+        let (input, slate) = (&self.prepared.input, &self.selection.indices);
+        Diversity {
+            category_entropy_bits: measures::category_entropy_bits(input, slate),
+            distinct_categories: measures::distinct_categories(input, slate),
+            intra_list_distance: measures::intra_list_distance(input, slate),
+        }
+    }
+
+    /// The wire response.
+    #[must_use]
+    pub fn to_response(&self) -> RerankResponse {
+        let p = &self.prepared;
+        let items = self
+            .selection
+            .indices
+            .iter()
+            .map(|&i| Item {
+                id: p.input.ids()[i].clone(),
+                score: p.input.scores()[i],
+                category: p.input.category(i).map(str::to_owned),
+            })
+            .collect();
+        RerankResponse {
+            request_id: p.request_id.clone(),
+            slice: p.slice.name.clone(),
+            algorithm: p.algorithm.name(),
+            lambda: p.params.lambda(),
+            k: p.k,
+            items,
+            diversity: self.diversity(),
+        }
+    }
+}

@@ -1,0 +1,170 @@
+//! `ApiError`: every non-2xx answer, mapped to a status and the `{"error": ...}` body in one
+//! place.
+//!
+//! Caller mistakes (4xx) carry a message the caller can act on and are not logged above debug.
+//! Service faults (5xx other than shedding) carry a generic message; the detail travels in a
+//! response extension ([`InternalDetail`]) to the observing middleware, which logs it once, so
+//! building a response has no side effects.
+
+use axum::http::{header, HeaderValue, StatusCode};
+use axum::response::{IntoResponse, Response};
+
+use crate::engine::RequestError;
+use crate::wire::ErrorBody;
+
+/// Every way a request can fail at the HTTP layer.
+#[derive(Debug, thiserror::Error)]
+pub enum ApiError {
+    /// A decoding or validation failure (400 or 422).
+    #[error(transparent)]
+    Request(#[from] RequestError),
+    /// The body exceeds the limit (413).
+    #[error("the request body exceeds the limit of {limit} bytes; send fewer or shorter embeddings (embedding_b64 is about 2.5x smaller)")]
+    PayloadTooLarge {
+        /// The configured limit.
+        limit: usize,
+    },
+    /// Wrong or missing `Content-Type` (415).
+    #[error("Content-Type must be {expected}, got {got}")]
+    UnsupportedMediaType {
+        /// What the route accepts.
+        expected: &'static str,
+        /// What the request sent.
+        got: String,
+    },
+    /// The body could not be read to its end (400).
+    #[error("the request body could not be read: {0}")]
+    BodyRead(String),
+    /// No such route (404).
+    #[error("no route {method} {path}; see GET /openapi.json for the API")]
+    NotFound {
+        /// Request method.
+        method: String,
+        /// Request path.
+        path: String,
+    },
+    /// The route exists with other methods (405).
+    #[error("{method} is not allowed on {path}; see GET /openapi.json for the API")]
+    MethodNotAllowed {
+        /// Request method.
+        method: String,
+        /// Request path.
+        path: String,
+    },
+    /// The concurrency limit is reached (503 with `Retry-After`).
+    #[error(
+        "the service is at its concurrency limit of {limit} requests; retry after the Retry-After delay"
+    )]
+    Overloaded {
+        /// `max_in_flight`.
+        limit: usize,
+    },
+    /// The request ran past its deadline (503 with `Retry-After`).
+    #[error("the request did not finish within {ms} ms; retry, or send fewer candidates or a smaller k")]
+    DeadlineExceeded {
+        /// The deadline.
+        ms: u128,
+    },
+    /// The service is shutting down (503).
+    #[error("the service is shutting down; retry on another instance")]
+    ShuttingDown,
+    /// A panic was caught (500).
+    #[error("panic: {0}")]
+    Panicked(String),
+}
+
+/// Detail of a 5xx, for the logging middleware; never sent to the client.
+#[derive(Debug, Clone)]
+pub struct InternalDetail(pub String);
+
+impl ApiError {
+    /// HTTP status.
+    #[must_use]
+    pub fn status(&self) -> StatusCode {
+        match self {
+            Self::Request(e) if e.is_internal() => StatusCode::INTERNAL_SERVER_ERROR,
+            Self::Request(RequestError::MalformedJson { .. } | RequestError::InvalidField { .. })
+            | Self::BodyRead(_) => StatusCode::BAD_REQUEST,
+            Self::Request(_) => StatusCode::UNPROCESSABLE_ENTITY,
+            Self::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
+            Self::UnsupportedMediaType { .. } => StatusCode::UNSUPPORTED_MEDIA_TYPE,
+            Self::NotFound { .. } => StatusCode::NOT_FOUND,
+            Self::MethodNotAllowed { .. } => StatusCode::METHOD_NOT_ALLOWED,
+            Self::Overloaded { .. } | Self::DeadlineExceeded { .. } | Self::ShuttingDown => {
+                StatusCode::SERVICE_UNAVAILABLE
+            }
+            Self::Panicked(_) => StatusCode::INTERNAL_SERVER_ERROR,
+        }
+    }
+
+    /// Stable snake_case code.
+    #[must_use]
+    pub fn code(&self) -> &'static str {
+        match self {
+            Self::Request(e) => e.code(),
+            Self::PayloadTooLarge { .. } => "body_too_large",
+            Self::UnsupportedMediaType { .. } => "unsupported_media_type",
+            Self::BodyRead(_) => "body_read_failed",
+            Self::NotFound { .. } => "not_found",
+            Self::MethodNotAllowed { .. } => "method_not_allowed",
+            Self::Overloaded { .. } => "overloaded",
+            Self::DeadlineExceeded { .. } => "deadline_exceeded",
+            Self::ShuttingDown => "shutting_down",
+            Self::Panicked(_) => "internal",
+        }
+    }
+
+    /// The body sent to the client.
+    #[must_use]
+    pub fn body(&self) -> ErrorBody {
+        match self {
+            Self::Request(e) if !e.is_internal() => ErrorBody::from_request_error(e),
+            Self::Request(_) | Self::Panicked(_) => ErrorBody::new(
+                "internal",
+                "internal error; the service logged the detail and keeps serving, so the request may be retried",
+                None,
+            ),
+            other => ErrorBody::new(other.code(), other.to_string(), None),
+        }
+    }
+}
+
+/// Seconds callers should wait before retrying a 503.
+pub const RETRY_AFTER_SECONDS: &str = "1";
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let status = self.status();
+        let mut response = (
+            status,
+            [(header::CONTENT_TYPE, HeaderValue::from_static("application/json"))],
+            self.body().to_json(),
+        )
+            .into_response();
+        if status == StatusCode::SERVICE_UNAVAILABLE {
+            response.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static(RETRY_AFTER_SECONDS));
+        }
+        if status.is_server_error() && status != StatusCode::SERVICE_UNAVAILABLE {
+            response.extensions_mut().insert(InternalDetail(self.to_string()));
+        }
+        response
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn statuses_and_codes() {
+        let bad = ApiError::Request(RequestError::MalformedJson { message: "x".into() });
+        assert_eq!((bad.status(), bad.code()), (StatusCode::BAD_REQUEST, "malformed_json"));
+        let shed = ApiError::Overloaded { limit: 1 }.into_response();
+        assert_eq!(shed.status(), StatusCode::SERVICE_UNAVAILABLE);
+        assert_eq!(shed.headers()[header::RETRY_AFTER], "1");
+        let panic = ApiError::Panicked("secret detail".into());
+        assert!(!panic.body().error.message.contains("secret"));
+        let r = panic.into_response();
+        assert_eq!(r.extensions().get::<InternalDetail>().unwrap().0, "panic: secret detail");
+    }
+}

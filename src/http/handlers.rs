@@ -1,0 +1,327 @@
+//! Handlers: read the body, snapshot the engine, hand the work to the pool, map the result.
+//!
+//! Bodies are read here rather than by an extractor so the limit is enforced while reading
+//! (a declared `Content-Length` over the limit is refused before reading anything) and every
+//! failure comes back in our error shape. Small bodies (under [`INLINE_BODY_BELOW`]) are decoded
+//! on the async worker; larger ones are decoded, validated and served entirely on the pool, since
+//! parsing a multi-megabyte slate costs milliseconds of CPU.
+
+use std::convert::Infallible;
+use std::sync::Arc;
+use std::time::Instant;
+
+use axum::body::{Body, Bytes};
+use axum::extract::{Request, State};
+use axum::http::{header, HeaderMap, HeaderValue, Method, StatusCode, Uri};
+use axum::response::{IntoResponse, Response};
+use axum::Extension;
+use futures_util::{stream, StreamExt};
+
+use super::{Admitted, ApiError, AppState};
+use crate::engine::Engine;
+use crate::wire::decode_request;
+
+/// Bodies shorter than this are decoded inline on the async worker (about 100 candidates with
+/// 32-dimension JSON embeddings); larger ones go to the pool with the kernel.
+pub const INLINE_BODY_BELOW: usize = 64 << 10;
+
+/// The committed OpenAPI document, served as is.
+pub const OPENAPI_JSON: &str = include_str!("../../docs/openapi.json");
+
+/// What one served slate leaves behind for metrics and logs.
+struct Served {
+    body: Vec<u8>,
+    slice: String,
+    algorithm: &'static str,
+    n: usize,
+    k: usize,
+    entropy: f64,
+    ild: Option<f64>,
+    request_id: Option<String>,
+}
+
+fn serve_prepared(prepared: crate::engine::Prepared, ws: &mut crate::Workspace) -> Result<Served, ApiError> {
+    let reranked = prepared.run(ws)?;
+    let response = reranked.to_response();
+    let body = serde_json::to_vec(&response)
+        .map_err(|e| ApiError::Panicked(format!("encoding the response: {e}")))?;
+    Ok(Served {
+        body,
+        slice: response.slice,
+        algorithm: response.algorithm,
+        n: reranked.prepared.input.len(),
+        k: reranked.selection.indices.len(),
+        entropy: response.diversity.category_entropy_bits,
+        ild: response.diversity.intra_list_distance,
+        request_id: response.request_id,
+    })
+}
+
+/// Decodes, validates and serves one request body against `engine`, within its deadline.
+async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Result<Served, ApiError> {
+    let started = Instant::now();
+    let deadline = engine.config().server.request_timeout;
+    let work = async {
+        if bytes.len() >= INLINE_BODY_BELOW {
+            state
+                .pool
+                .run(u64::MAX, move |ws| serve_prepared(engine.prepare(decode_request(&bytes)?)?, ws))
+                .await
+        } else {
+            match decode_request(&bytes).and_then(|r| engine.prepare(r)) {
+                Ok(prepared) => state.pool.run(prepared.work(), move |ws| serve_prepared(prepared, ws)).await,
+                Err(e) => Ok(Err(e.into())),
+            }
+        }
+    };
+    let served = match tokio::time::timeout(deadline, work).await {
+        Err(_) => return Err(ApiError::DeadlineExceeded { ms: deadline.as_millis() }),
+        Ok(Err(crate::pool::PoolError::Panicked(message))) => {
+            state.metrics.panics.inc();
+            return Err(ApiError::Panicked(message));
+        }
+        Ok(Ok(result)) => result?,
+    };
+    state.metrics.observe_slate(
+        &served.slice,
+        served.algorithm,
+        started.elapsed().as_secs_f64(),
+        served.n,
+        served.entropy,
+        served.ild,
+    );
+    Ok(served)
+}
+
+/// Accepts `expected` with optional parameters (`application/json; charset=utf-8`).
+fn check_content_type(headers: &HeaderMap, expected: &'static str) -> Result<(), ApiError> {
+    let got = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
+    let essence = got.split(';').next().unwrap_or("").trim();
+    if essence.eq_ignore_ascii_case(expected) {
+        Ok(())
+    } else {
+        let got = if got.is_empty() { "nothing".to_owned() } else { format!("{got:?}") };
+        Err(ApiError::UnsupportedMediaType { expected, got })
+    }
+}
+
+/// Reads the whole body, refusing it as soon as it is known to exceed `limit`.
+async fn read_body(headers: &HeaderMap, body: Body, limit: usize) -> Result<Bytes, ApiError> {
+    let declared =
+        headers.get(header::CONTENT_LENGTH).and_then(|v| v.to_str().ok()).and_then(|v| v.parse::<u64>().ok());
+    if declared.is_some_and(|n| n > limit as u64) {
+        return Err(ApiError::PayloadTooLarge { limit });
+    }
+    let mut buf = Vec::with_capacity(declared.map_or(0, |n| n as usize));
+    let mut frames = body.into_data_stream();
+    while let Some(frame) = frames.next().await {
+        let chunk = frame.map_err(|e| ApiError::BodyRead(e.to_string()))?;
+        if buf.len() + chunk.len() > limit {
+            return Err(ApiError::PayloadTooLarge { limit });
+        }
+        buf.extend_from_slice(&chunk);
+    }
+    Ok(Bytes::from(buf))
+}
+
+/// `POST /v1/rerank`.
+pub(super) async fn rerank(State(state): State<AppState>, request: Request) -> Result<Response, ApiError> {
+    let engine = state.engine.load_full();
+    let (parts, body) = request.into_parts();
+    check_content_type(&parts.headers, "application/json")?;
+    let bytes = read_body(&parts.headers, body, engine.config().server.max_body_bytes).await?;
+    let span = tracing::info_span!(
+        "rerank",
+        request_id = tracing::field::Empty,
+        slice = tracing::field::Empty,
+        algorithm = tracing::field::Empty,
+        n = tracing::field::Empty,
+        k = tracing::field::Empty,
+        latency_us = tracing::field::Empty,
+    );
+    let started = Instant::now();
+    let result = serve_one(&state, engine, bytes).await;
+    let latency_us = started.elapsed().as_micros() as u64;
+    match result {
+        Ok(served) => {
+            span.record("request_id", served.request_id.as_deref().unwrap_or(""));
+            span.record("slice", served.slice.as_str());
+            span.record("algorithm", served.algorithm);
+            span.record("n", served.n);
+            span.record("k", served.k);
+            span.record("latency_us", latency_us);
+            span.in_scope(|| tracing::debug!("served"));
+            Ok(json_response(StatusCode::OK, served.body))
+        }
+        Err(e) => {
+            span.record("latency_us", latency_us);
+            span.in_scope(|| tracing::debug!(code = e.code(), error = %e, "refused"));
+            Err(e)
+        }
+    }
+}
+
+fn json_response(status: StatusCode, body: Vec<u8>) -> Response {
+    (status, [(header::CONTENT_TYPE, HeaderValue::from_static("application/json"))], body).into_response()
+}
+
+/// One piece of an NDJSON body.
+enum Piece {
+    /// A non-blank line and its 1-based number.
+    Line(u64, Bytes),
+    /// A line longer than the limit (its bytes were discarded).
+    TooLong(u64),
+    /// The body failed mid-stream; nothing follows.
+    ReadFailed(u64, String),
+}
+
+/// Splits a body into lines without holding more than one line (bounded by `max`) in memory.
+fn split_lines(body: Body, max: usize) -> impl futures_util::Stream<Item = Piece> + Send {
+    struct St {
+        frames: axum::body::BodyDataStream,
+        buf: Vec<u8>,
+        line: u64,
+        skipping: bool,
+        done: bool,
+    }
+    fn take_line(st: &mut St, end: usize, out: &mut Vec<Piece>) {
+        st.line += 1;
+        let line: Vec<u8> = st.buf.drain(..end).collect();
+        if std::mem::take(&mut st.skipping) {
+            out.push(Piece::TooLong(st.line));
+        } else if !line.trim_ascii().is_empty() {
+            out.push(Piece::Line(st.line, Bytes::from(line)));
+        }
+    }
+    let st = St { frames: body.into_data_stream(), buf: Vec::new(), line: 0, skipping: false, done: false };
+    stream::unfold(st, move |mut st| async move {
+        if st.done {
+            return None;
+        }
+        let mut out = Vec::new();
+        match st.frames.next().await {
+            Some(Ok(chunk)) => {
+                let mut rest = &chunk[..];
+                while let Some(pos) = rest.iter().position(|&b| b == b'\n') {
+                    if !st.skipping {
+                        st.buf.extend_from_slice(&rest[..pos]);
+                    }
+                    let len = st.buf.len();
+                    take_line(&mut st, len, &mut out);
+                    rest = &rest[pos + 1..];
+                }
+                if !st.skipping {
+                    st.buf.extend_from_slice(rest);
+                    if st.buf.len() > max {
+                        st.buf.clear();
+                        st.skipping = true;
+                    }
+                }
+            }
+            Some(Err(e)) => {
+                st.done = true;
+                out.push(Piece::ReadFailed(st.line + 1, e.to_string()));
+            }
+            None => {
+                st.done = true;
+                if st.skipping || !st.buf.is_empty() {
+                    let len = st.buf.len();
+                    take_line(&mut st, len, &mut out);
+                }
+            }
+        }
+        Some((stream::iter(out), st))
+    })
+    .flatten()
+}
+
+/// `POST /v1/rerank/stream`: NDJSON in, NDJSON out, in order, as lines complete.
+pub(super) async fn rerank_stream(
+    State(state): State<AppState>,
+    Extension(admitted): Extension<Arc<Admitted>>,
+    request: Request,
+) -> Result<Response, ApiError> {
+    // One snapshot for the whole stream: every line is served by the same config.
+    let engine = state.engine.load_full();
+    let (parts, body) = request.into_parts();
+    check_content_type(&parts.headers, "application/x-ndjson")?;
+    let server = &engine.config().server;
+    let (max_line, in_flight) = (server.max_body_bytes, server.stream_in_flight);
+    let lines = split_lines(body, max_line).map(move |piece| {
+        let (state, engine) = (state.clone(), engine.clone());
+        async move {
+            let outcome = match piece {
+                Piece::Line(n, bytes) => serve_one(&state, engine, bytes).await.map_err(|e| (n, e)),
+                Piece::TooLong(n) => Err((n, ApiError::PayloadTooLarge { limit: max_line })),
+                Piece::ReadFailed(n, message) => Err((n, ApiError::BodyRead(message))),
+            };
+            let mut line = match outcome {
+                Ok(served) => {
+                    state.metrics.stream_lines.with_label_values(&["ok"]).inc();
+                    served.body
+                }
+                Err((n, e)) => {
+                    state.metrics.stream_lines.with_label_values(&["error"]).inc();
+                    e.body().at_line(n).to_json()
+                }
+            };
+            line.push(b'\n');
+            Ok::<Bytes, Infallible>(Bytes::from(line))
+        }
+    });
+    // `buffered` keeps output in input order with at most `in_flight` lines being served; the
+    // permit moves into the body so the stream counts against the concurrency limit to its end.
+    let body = lines.buffered(in_flight).map(move |line| {
+        let _hold = &admitted;
+        line
+    });
+    Ok((
+        StatusCode::OK,
+        [(header::CONTENT_TYPE, HeaderValue::from_static("application/x-ndjson"))],
+        Body::from_stream(body),
+    )
+        .into_response())
+}
+
+/// `GET /healthz`: the process is up and answering.
+pub(super) async fn healthz() -> Response {
+    json_response(StatusCode::OK, br#"{"status":"ok"}"#.to_vec())
+}
+
+/// `GET /readyz`: a config is loaded and the pool is up; 503 once shutdown has started.
+pub(super) async fn readyz(State(state): State<AppState>) -> Response {
+    let generation = state.engine.load().generation();
+    let status = if state.is_draining() { "draining" } else { "ready" };
+    let body = serde_json::json!({
+        "status": status,
+        "config_generation": generation,
+        "pool_threads": state.pool.threads(),
+    });
+    let code = if state.is_draining() { StatusCode::SERVICE_UNAVAILABLE } else { StatusCode::OK };
+    json_response(code, body.to_string().into_bytes())
+}
+
+/// `GET /metrics`: Prometheus text format.
+pub(super) async fn metrics(State(state): State<AppState>) -> Response {
+    (
+        StatusCode::OK,
+        [(header::CONTENT_TYPE, HeaderValue::from_static("text/plain; version=0.0.4; charset=utf-8"))],
+        state.metrics.render(),
+    )
+        .into_response()
+}
+
+/// `GET /openapi.json`.
+pub(super) async fn openapi() -> Response {
+    json_response(StatusCode::OK, OPENAPI_JSON.as_bytes().to_vec())
+}
+
+/// Unknown path.
+pub(super) async fn not_found(method: Method, uri: Uri) -> ApiError {
+    ApiError::NotFound { method: method.to_string(), path: uri.path().to_owned() }
+}
+
+/// Known path, wrong method.
+pub(super) async fn method_not_allowed(method: Method, uri: Uri) -> ApiError {
+    ApiError::MethodNotAllowed { method: method.to_string(), path: uri.path().to_owned() }
+}

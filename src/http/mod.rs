@@ -1,0 +1,182 @@
+//! The HTTP edge: routers for the public and the private listener, the middleware stack, and
+//! [`serve`], the one way to start the server (the binary and the tests both call it).
+//!
+//! Middleware, outermost first: `observe` (counts `medley_requests_total{status}` and logs 5xx
+//! detail once), panic catching (a panic becomes our 500 body and `medley_panics_total`), then,
+//! on `/v1/*` only, `admit` (the concurrency limit: a permit or an immediate 503 with
+//! `Retry-After`). Health, readiness and metrics are never shed.
+
+mod error;
+mod handlers;
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use arc_swap::ArcSwap;
+use axum::extract::{Request, State};
+use axum::middleware::{self, Next};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::Router;
+use tokio::net::TcpListener;
+use tokio::sync::{OwnedSemaphorePermit, Semaphore};
+use tower_http::catch_panic::CatchPanicLayer;
+
+pub use error::{ApiError, InternalDetail, RETRY_AFTER_SECONDS};
+pub use handlers::{INLINE_BODY_BELOW, OPENAPI_JSON};
+
+use crate::engine::Engine;
+use crate::metrics::Metrics;
+use crate::pool::{panic_message, Pool};
+use crate::shutdown::Shutdown;
+
+/// Everything a handler needs; cheap to clone.
+#[derive(Debug, Clone)]
+pub struct AppState {
+    /// The live engine. `ArcSwap` because every request loads it once and reloads replace it
+    /// whole: readers never lock, and a request keeps its snapshot to the end.
+    pub engine: Arc<ArcSwap<Engine>>,
+    /// Kernel pool.
+    pub pool: Arc<Pool>,
+    /// Metric handles.
+    pub metrics: Arc<Metrics>,
+    /// Concurrency permits (`server.max_in_flight`, fixed at start). A semaphore rather than a
+    /// counter so a stream's permit can live inside its response body until the last line.
+    permits: Arc<Semaphore>,
+    max_in_flight: usize,
+    /// Set when shutdown starts: readiness turns 503 so load balancers stop sending.
+    draining: Arc<AtomicBool>,
+}
+
+impl AppState {
+    /// State for `engine`, with a pool and permits sized from its `[server]` settings.
+    ///
+    /// # Errors
+    /// When the pool's threads cannot be started.
+    pub fn new(engine: Engine, metrics: Arc<Metrics>) -> Result<Self, rayon::ThreadPoolBuildError> {
+        let server = &engine.config().server;
+        let pool = Pool::new(server.pool_threads, server.inline_work_below)?;
+        let max_in_flight = server.max_in_flight;
+        metrics.pool_threads.set(pool.threads() as i64);
+        metrics.config_generation.set(i64::try_from(engine.generation()).unwrap_or(i64::MAX));
+        Ok(Self {
+            engine: Arc::new(ArcSwap::from_pointee(engine)),
+            pool: Arc::new(pool),
+            metrics,
+            permits: Arc::new(Semaphore::new(max_in_flight)),
+            max_in_flight,
+            draining: Arc::new(AtomicBool::new(false)),
+        })
+    }
+
+    fn is_draining(&self) -> bool {
+        self.draining.load(Ordering::Relaxed)
+    }
+}
+
+/// Holds one concurrency permit and the in-flight gauge for as long as it lives.
+#[derive(Debug)]
+pub(crate) struct Admitted {
+    _permit: OwnedSemaphorePermit,
+    metrics: Arc<Metrics>,
+}
+
+impl Drop for Admitted {
+    fn drop(&mut self) {
+        self.metrics.in_flight.dec();
+    }
+}
+
+/// The public router: the re-rank API plus health, metrics and the OpenAPI document.
+pub fn app(state: AppState) -> Router {
+    let v1 = Router::new()
+        .route("/v1/rerank", post(handlers::rerank))
+        .route("/v1/rerank/stream", post(handlers::rerank_stream))
+        .route_layer(middleware::from_fn_with_state(state.clone(), admit));
+    Router::new()
+        .merge(v1)
+        .merge(common_routes())
+        .route("/openapi.json", get(handlers::openapi))
+        .fallback(handlers::not_found)
+        .method_not_allowed_fallback(handlers::method_not_allowed)
+        .layer(panic_layer(state.metrics.clone()))
+        .layer(middleware::from_fn_with_state(state.clone(), observe))
+        .with_state(state)
+}
+
+/// The private router: health and metrics (the admin endpoints join it with traffic slices).
+pub fn admin_app(state: AppState) -> Router {
+    Router::new()
+        .merge(common_routes())
+        .fallback(handlers::not_found)
+        .method_not_allowed_fallback(handlers::method_not_allowed)
+        .layer(panic_layer(state.metrics.clone()))
+        .layer(middleware::from_fn_with_state(state.clone(), observe))
+        .with_state(state)
+}
+
+fn common_routes() -> Router<AppState> {
+    Router::new()
+        .route("/healthz", get(handlers::healthz))
+        .route("/readyz", get(handlers::readyz))
+        .route("/metrics", get(handlers::metrics))
+}
+
+fn panic_layer(
+    metrics: Arc<Metrics>,
+) -> CatchPanicLayer<impl Fn(Box<dyn std::any::Any + Send + 'static>) -> Response + Clone> {
+    CatchPanicLayer::custom(move |payload: Box<dyn std::any::Any + Send + 'static>| {
+        metrics.panics.inc();
+        ApiError::Panicked(panic_message(payload.as_ref())).into_response()
+    })
+}
+
+/// Counts every answer by status and logs server faults once, with their detail.
+async fn observe(State(state): State<AppState>, request: Request, next: Next) -> Response {
+    let (method, path) = (request.method().clone(), request.uri().path().to_owned());
+    let response = next.run(request).await;
+    let status = response.status();
+    state.metrics.requests.with_label_values(&[status.as_str()]).inc();
+    if let Some(InternalDetail(detail)) = response.extensions().get::<InternalDetail>() {
+        tracing::error!(%method, %path, status = status.as_u16(), %detail, "request failed");
+    }
+    response
+}
+
+/// The concurrency limit: take a permit or answer 503 at once.
+async fn admit(State(state): State<AppState>, mut request: Request, next: Next) -> Response {
+    if state.is_draining() {
+        return ApiError::ShuttingDown.into_response();
+    }
+    let Ok(permit) = state.permits.clone().try_acquire_owned() else {
+        state.metrics.shed.inc();
+        return ApiError::Overloaded { limit: state.max_in_flight }.into_response();
+    };
+    state.metrics.in_flight.inc();
+    let admitted = Arc::new(Admitted { _permit: permit, metrics: state.metrics.clone() });
+    request.extensions_mut().insert(admitted);
+    next.run(request).await
+}
+
+/// Serves the public and the private router until `shutdown` starts, then stops accepting,
+/// lets in-flight requests (and open streams) finish, and returns.
+///
+/// # Errors
+/// An I/O error from either listener's accept loop.
+pub async fn serve(
+    public: TcpListener,
+    admin: TcpListener,
+    state: AppState,
+    shutdown: Shutdown,
+) -> std::io::Result<()> {
+    let draining = state.draining.clone();
+    let mark = shutdown.clone();
+    tokio::spawn(async move {
+        mark.started().await;
+        draining.store(true, Ordering::Relaxed);
+    });
+    let public = axum::serve(public, app(state.clone())).with_graceful_shutdown(shutdown.clone().started());
+    let admin = axum::serve(admin, admin_app(state)).with_graceful_shutdown(shutdown.started());
+    let (a, b) = tokio::join!(async { public.await }, async { admin.await });
+    a.and(b)
+}

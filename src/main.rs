@@ -1,0 +1,120 @@
+//! The `medley` binary: parse the command line, set up logging, run one subcommand, and turn
+//! its outcome into an exit code (0 on success, 1 on any error, with the error on stderr).
+
+use std::io::{BufReader, BufWriter, Write};
+use std::process::ExitCode;
+use std::sync::Arc;
+
+use anyhow::Context as _;
+use clap::Parser as _;
+
+use medley::cli::{Cli, Command, LogFormat};
+use medley::config::{Config, DEFAULT_TOML};
+use medley::engine::Engine;
+use medley::http::{serve, AppState};
+use medley::metrics::Metrics;
+use medley::pool::Pool;
+use medley::shutdown;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    init_logging(cli.log_format);
+    match run(cli.command) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("medley: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+fn init_logging(format: LogFormat) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    match format {
+        LogFormat::Text => builder.init(),
+        LogFormat::Json => builder.json().init(),
+    }
+}
+
+fn load_config(path: Option<&std::path::Path>) -> anyhow::Result<Config> {
+    let (text, source) = match path {
+        Some(p) => (
+            std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?,
+            p.display().to_string(),
+        ),
+        None => (DEFAULT_TOML.to_owned(), "the embedded config/default.toml".to_owned()),
+    };
+    Config::from_toml(&text).with_context(|| format!("invalid config in {source}"))
+}
+
+fn run(command: Command) -> anyhow::Result<()> {
+    match command {
+        Command::Serve { config, listen, admin_listen } => {
+            let mut config = load_config(config.as_deref())?;
+            if let Some(a) = listen {
+                config.server.listen = a;
+            }
+            if let Some(a) = admin_listen {
+                config.server.admin_listen = a;
+            }
+            let runtime = tokio::runtime::Builder::new_multi_thread()
+                .enable_all()
+                .build()
+                .context("starting the runtime")?;
+            runtime.block_on(serve_main(config))
+        }
+        Command::Rerank { input, output, config } => {
+            let config = load_config(config.as_deref())?;
+            let pool = Pool::new(config.server.pool_threads, 0).context("starting the pool")?;
+            let engine = Engine::new(config, 1);
+            let mut reader: Box<dyn std::io::BufRead> = if input == "-" {
+                Box::new(BufReader::new(std::io::stdin().lock()))
+            } else {
+                Box::new(BufReader::new(
+                    std::fs::File::open(&input).with_context(|| format!("opening {input}"))?,
+                ))
+            };
+            let mut writer: Box<dyn Write> = if output == "-" {
+                Box::new(BufWriter::new(std::io::stdout().lock()))
+            } else {
+                Box::new(BufWriter::new(
+                    std::fs::File::create(&output).with_context(|| format!("creating {output}"))?,
+                ))
+            };
+            let summary = medley::batch::run(&engine, &pool, &mut reader, &mut writer)?;
+            eprintln!("{summary}");
+            Ok(())
+        }
+        Command::CheckConfig { file } => {
+            let config = load_config(Some(&file))?;
+            print!("{}", medley::config::describe(&config));
+            Ok(())
+        }
+    }
+}
+
+async fn serve_main(config: Config) -> anyhow::Result<()> {
+    let (listen, admin_listen) = (config.server.listen, config.server.admin_listen);
+    let public = tokio::net::TcpListener::bind(listen).await.with_context(|| format!("binding {listen}"))?;
+    let admin = tokio::net::TcpListener::bind(admin_listen)
+        .await
+        .with_context(|| format!("binding {admin_listen}"))?;
+    let state =
+        AppState::new(Engine::new(config, 1), Arc::new(Metrics::new())).context("starting the pool")?;
+    tracing::info!(
+        listen = %public.local_addr()?,
+        admin_listen = %admin.local_addr()?,
+        pool_threads = state.pool.threads(),
+        "medley serving"
+    );
+    let (trigger, token) = shutdown::channel();
+    tokio::spawn(async move {
+        shutdown::signal().await;
+        trigger.fire();
+    });
+    serve(public, admin, state, token).await.context("serving")?;
+    tracing::info!("drained; exiting");
+    Ok(())
+}

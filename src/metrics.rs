@@ -1,0 +1,207 @@
+//! `Metrics`: owns the Prometheus registry and every metric handle.
+//!
+//! Label values are only ever configured slice names, registry algorithm names and HTTP status
+//! codes, never free text from a caller, so the number of series stays bounded by the config.
+//! Duration buckets span 50 µs to 1 s: the kernels run from a few µs (relevance) to tens of ms
+//! (DPP on 5 000 candidates), and the request deadline defaults to 1 s.
+
+use prometheus::{
+    Encoder, GaugeVec, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge, Opts, Registry,
+    TextEncoder,
+};
+
+/// Buckets of `medley_rerank_duration_seconds`, 50 µs to 1 s, about ×2 apart.
+pub const DURATION_BUCKETS: &[f64] =
+    &[0.00005, 0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0];
+
+/// Buckets of the category-entropy histogram, in bits: log2 of 1..=1000 categories spans 0–10.
+pub const ENTROPY_BUCKETS: &[f64] = &[0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 5.0, 6.0, 8.0, 10.0];
+
+/// Buckets of candidates per request, up to the default 10 000 limit.
+pub const CANDIDATE_BUCKETS: &[f64] =
+    &[0.0, 10.0, 25.0, 50.0, 100.0, 200.0, 500.0, 1000.0, 2000.0, 5000.0, 10000.0];
+
+/// Every metric the service exports.
+#[derive(Debug, Clone)]
+pub struct Metrics {
+    registry: Registry,
+    /// `medley_requests_total{status}`: every HTTP answer, by status code.
+    pub requests: IntCounterVec,
+    /// `medley_rerank_duration_seconds{slice, algorithm}`: from decoded body to built response.
+    pub rerank_duration: HistogramVec,
+    /// `medley_category_entropy_bits{slice, algorithm}`: entropy of every served slate.
+    pub entropy: HistogramVec,
+    /// `medley_last_category_entropy_bits{slice, algorithm}`: entropy of the latest slate.
+    pub last_entropy: GaugeVec,
+    /// `medley_last_intra_list_distance{slice, algorithm}`: ILD of the latest slate with embeddings.
+    pub last_ild: GaugeVec,
+    /// `medley_candidates_per_request{slice}`.
+    pub candidates: HistogramVec,
+    /// `medley_panics_total`: panics caught in handlers or kernels.
+    pub panics: IntCounter,
+    /// `medley_shed_total`: requests refused with 503 because `max_in_flight` were running.
+    pub shed: IntCounter,
+    /// `medley_in_flight_requests`: requests holding a concurrency permit.
+    pub in_flight: IntGauge,
+    /// `medley_config_generation`: generation of the config being served.
+    pub config_generation: IntGauge,
+    /// `medley_stream_lines_total{outcome}`: stream and batch lines, `ok` or `error`.
+    pub stream_lines: IntCounterVec,
+    /// `medley_pool_threads`: kernel pool size.
+    pub pool_threads: IntGauge,
+}
+
+fn must<T>(r: prometheus::Result<T>) -> T {
+    // Metric definitions are constants; a failure is a programming error caught by the tests.
+    r.expect("metric definitions are valid and unique")
+}
+
+impl Metrics {
+    /// Creates and registers every metric.
+    ///
+    /// # Panics
+    /// Never for these constant definitions (a unit test registers them all).
+    #[must_use]
+    pub fn new() -> Self {
+        let registry = Registry::new();
+        let reg = |c: Box<dyn prometheus::core::Collector>| must(registry.register(c));
+        let requests = must(IntCounterVec::new(
+            Opts::new("medley_requests_total", "HTTP requests answered, by status code."),
+            &["status"],
+        ));
+        let rerank_duration = must(HistogramVec::new(
+            HistogramOpts::new(
+                "medley_rerank_duration_seconds",
+                "Time to serve one slate, from decoded body to built response.",
+            )
+            .buckets(DURATION_BUCKETS.to_vec()),
+            &["slice", "algorithm"],
+        ));
+        let entropy = must(HistogramVec::new(
+            HistogramOpts::new(
+                "medley_category_entropy_bits",
+                "Shannon entropy of the categories of each served slate, in bits.",
+            )
+            .buckets(ENTROPY_BUCKETS.to_vec()),
+            &["slice", "algorithm"],
+        ));
+        let last_entropy = must(GaugeVec::new(
+            Opts::new(
+                "medley_last_category_entropy_bits",
+                "Category entropy of the latest served slate, in bits.",
+            ),
+            &["slice", "algorithm"],
+        ));
+        let last_ild = must(GaugeVec::new(
+            Opts::new("medley_last_intra_list_distance", "Intra-list distance (mean pairwise cosine distance) of the latest served slate that had embeddings."),
+            &["slice", "algorithm"],
+        ));
+        let candidates = must(HistogramVec::new(
+            HistogramOpts::new("medley_candidates_per_request", "Candidates sent per re-rank request.")
+                .buckets(CANDIDATE_BUCKETS.to_vec()),
+            &["slice"],
+        ));
+        let panics = must(IntCounter::new("medley_panics_total", "Panics caught and answered with 500."));
+        let shed = must(IntCounter::new(
+            "medley_shed_total",
+            "Requests refused with 503 because the concurrency limit was reached.",
+        ));
+        let in_flight = must(IntGauge::new("medley_in_flight_requests", "Requests being processed."));
+        let config_generation =
+            must(IntGauge::new("medley_config_generation", "Generation of the configuration being served."));
+        let stream_lines = must(IntCounterVec::new(
+            Opts::new(
+                "medley_stream_lines_total",
+                "Lines answered on the NDJSON stream endpoint, by outcome.",
+            ),
+            &["outcome"],
+        ));
+        let pool_threads = must(IntGauge::new("medley_pool_threads", "Threads in the kernel pool."));
+        reg(Box::new(requests.clone()));
+        reg(Box::new(rerank_duration.clone()));
+        reg(Box::new(entropy.clone()));
+        reg(Box::new(last_entropy.clone()));
+        reg(Box::new(last_ild.clone()));
+        reg(Box::new(candidates.clone()));
+        reg(Box::new(panics.clone()));
+        reg(Box::new(shed.clone()));
+        reg(Box::new(in_flight.clone()));
+        reg(Box::new(config_generation.clone()));
+        reg(Box::new(stream_lines.clone()));
+        reg(Box::new(pool_threads.clone()));
+        Self {
+            registry,
+            requests,
+            rerank_duration,
+            entropy,
+            last_entropy,
+            last_ild,
+            candidates,
+            panics,
+            shed,
+            in_flight,
+            config_generation,
+            stream_lines,
+            pool_threads,
+        }
+    }
+
+    /// Records one served slate.
+    pub fn observe_slate(
+        &self,
+        slice: &str,
+        algorithm: &str,
+        seconds: f64,
+        n: usize,
+        entropy: f64,
+        ild: Option<f64>,
+    ) {
+        let labels = [slice, algorithm];
+        self.rerank_duration.with_label_values(&labels).observe(seconds);
+        self.entropy.with_label_values(&labels).observe(entropy);
+        self.last_entropy.with_label_values(&labels).set(entropy);
+        if let Some(ild) = ild {
+            self.last_ild.with_label_values(&labels).set(ild);
+        }
+        self.candidates.with_label_values(&[slice]).observe(n as f64);
+    }
+
+    /// The Prometheus text exposition (format 0.0.4).
+    #[must_use]
+    pub fn render(&self) -> Vec<u8> {
+        let mut out = Vec::with_capacity(16 << 10);
+        // Encoding into a Vec cannot fail for well-formed families.
+        let _ = TextEncoder::new().encode(&self.registry.gather(), &mut out);
+        out
+    }
+}
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn renders_every_family_after_one_slate() {
+        let m = Metrics::new();
+        m.requests.with_label_values(&["200"]).inc();
+        m.observe_slate("default", "dpp", 0.0004, 500, 1.5, Some(0.4));
+        let text = String::from_utf8(m.render()).unwrap();
+        for name in [
+            "medley_requests_total{status=\"200\"} 1",
+            "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",slice=\"default\",le=\"0.0005\"} 1",
+            "medley_category_entropy_bits_sum{algorithm=\"dpp\",slice=\"default\"} 1.5",
+            "medley_last_category_entropy_bits{algorithm=\"dpp\",slice=\"default\"} 1.5",
+            "medley_last_intra_list_distance{algorithm=\"dpp\",slice=\"default\"} 0.4",
+            "medley_candidates_per_request_count{slice=\"default\"} 1",
+            "medley_panics_total 0",
+        ] {
+            assert!(text.contains(name), "missing {name} in\n{text}");
+        }
+    }
+}

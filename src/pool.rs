@@ -1,0 +1,160 @@
+//! The bounded CPU pool the service runs kernels on, so diversification never stalls the async
+//! runtime's I/O threads.
+//!
+//! A slate whose estimated work is small runs inline on the async worker: handing it to the pool
+//! and waking the task again costs more than the kernel (see [`INLINE_WORK_BELOW`]). Each thread,
+//! pool or async worker, keeps one [`Workspace`] in a thread-local, so steady-state calls reuse
+//! their buffers. A panic in a job is caught here and returned as [`PoolError::Panicked`]; rayon
+//! would otherwise abort the process.
+
+use std::cell::RefCell;
+use std::panic::{catch_unwind, AssertUnwindSafe};
+
+use crate::diversify::Workspace;
+
+/// Default inline cut-off in work units.
+///
+/// A work unit is roughly one multiply-add of the kernel ([`work_estimate`]); DPP at
+/// (N, d, k) = (500, 64, 50) is 2.85 M units and ran in about 430 µs on the 2-vCPU dev VM, so
+/// kernels do several thousand units per µs. The cut-off sits where the kernel costs about as
+/// much as the hop to the pool and back (DEVELOPERS.md, "Inline cut-off", has the measurement).
+pub const INLINE_WORK_BELOW: u64 = 100_000;
+
+thread_local! {
+    static WORKSPACE: RefCell<Workspace> = RefCell::new(Workspace::new());
+}
+
+/// Why a pool job produced no result.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum PoolError {
+    /// The job panicked; the message is the panic payload when it was a string.
+    #[error("the kernel panicked: {0}")]
+    Panicked(String),
+}
+
+/// Estimated kernel work for a slate of `n` candidates of dimension `d`, choosing `k`.
+///
+/// Relevance and quota sort: about `n·log2 n`. MMR and DPP touch every remaining candidate's
+/// embedding once per pick: about `n·k·(d + k)` (the Cholesky row adds the `k` term for DPP; MMR's
+/// lazy evaluation usually does far less, so this over-estimates it, which only errs toward the
+/// pool).
+#[must_use]
+pub fn work_estimate(algorithm: &str, n: usize, d: usize, k: usize) -> u64 {
+    let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);
+    match algorithm {
+        "mmr" | "dpp" => n.saturating_mul(k).saturating_mul(d.saturating_add(k)),
+        _ => n.saturating_mul(u64::from(64 - n.leading_zeros())),
+    }
+}
+
+/// The kernel pool.
+#[derive(Debug)]
+pub struct Pool {
+    threads: rayon::ThreadPool,
+    inline_below: u64,
+}
+
+impl Pool {
+    /// Starts `threads` worker threads named `medley-kernel-N`.
+    ///
+    /// # Errors
+    /// When the OS refuses to start a thread.
+    pub fn new(threads: usize, inline_below: u64) -> Result<Self, rayon::ThreadPoolBuildError> {
+        let threads = rayon::ThreadPoolBuilder::new()
+            .num_threads(threads.max(1))
+            .thread_name(|i| format!("medley-kernel-{i}"))
+            .build()?;
+        Ok(Self { threads, inline_below })
+    }
+
+    /// Number of worker threads.
+    #[must_use]
+    pub fn threads(&self) -> usize {
+        self.threads.current_num_threads()
+    }
+
+    /// Runs `job` with this thread's workspace: inline when `work` is below the cut-off,
+    /// otherwise on the pool, awaiting the result without blocking the runtime.
+    ///
+    /// Dropping the returned future does not stop a job already on the pool; it runs to the end
+    /// and its result is discarded (kernels are not interruptible; the request deadline answers the
+    /// caller, and the concurrency limit bounds how many such jobs can pile up).
+    ///
+    /// # Errors
+    /// [`PoolError::Panicked`] if the job panicked.
+    pub async fn run<R, F>(&self, work: u64, job: F) -> Result<R, PoolError>
+    where
+        R: Send + 'static,
+        F: FnOnce(&mut Workspace) -> R + Send + 'static,
+    {
+        if work < self.inline_below {
+            return run_here(job);
+        }
+        let (tx, rx) = tokio::sync::oneshot::channel();
+        self.threads.spawn(move || {
+            // The receiver may be gone (deadline passed); nothing to do then.
+            let _ = tx.send(run_here(job));
+        });
+        rx.await.unwrap_or_else(|_| Err(PoolError::Panicked("the pool dropped the job".into())))
+    }
+
+    /// Runs `f` on the pool and blocks the calling (non-async) thread until it returns; for the
+    /// batch subcommand, which parallelises with rayon inside `f`.
+    pub fn install<R: Send>(&self, f: impl FnOnce() -> R + Send) -> R {
+        self.threads.install(f)
+    }
+}
+
+/// Runs `job` on the current thread with its thread-local workspace, catching a panic.
+///
+/// # Errors
+/// [`PoolError::Panicked`] if the job panicked.
+pub fn run_here<R>(job: impl FnOnce(&mut Workspace) -> R) -> Result<R, PoolError> {
+    catch_unwind(AssertUnwindSafe(|| {
+        WORKSPACE.with(|ws| match ws.try_borrow_mut() {
+            Ok(mut ws) => job(&mut ws),
+            // Re-entrant use (a job calling run_here) gets a fresh workspace.
+            Err(_) => job(&mut Workspace::new()),
+        })
+    }))
+    .map_err(|payload| PoolError::Panicked(panic_message(payload.as_ref())))
+}
+
+/// The text of a panic payload, when it has one.
+#[must_use]
+pub fn panic_message(payload: &(dyn std::any::Any + Send)) -> String {
+    if let Some(s) = payload.downcast_ref::<&str>() {
+        (*s).to_owned()
+    } else if let Some(s) = payload.downcast_ref::<String>() {
+        s.clone()
+    } else {
+        "non-string panic payload".to_owned()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn estimates_order_algorithms_by_cost() {
+        assert_eq!(work_estimate("dpp", 500, 64, 50), 500 * 50 * 114);
+        assert_eq!(work_estimate("relevance", 1024, 64, 50), 1024 * 11);
+        assert_eq!(work_estimate("dpp", 0, 64, 50), 0);
+        assert!(work_estimate("dpp", 10, 4, 5) < INLINE_WORK_BELOW);
+    }
+
+    #[tokio::test]
+    async fn runs_inline_and_on_the_pool_and_catches_panics() {
+        let pool = Pool::new(1, 10).unwrap();
+        let here = std::thread::current().id();
+        assert_eq!(pool.run(0, move |_| std::thread::current().id()).await.unwrap(), here);
+        assert_ne!(pool.run(10, move |_| std::thread::current().id()).await.unwrap(), here);
+        let err = pool.run(10, |_| -> u8 { panic!("boom") }).await.unwrap_err();
+        assert_eq!(err, PoolError::Panicked("boom".into()));
+        let err = pool.run(0, |_| -> u8 { panic!("inline {}", 1) }).await.unwrap_err();
+        assert_eq!(err, PoolError::Panicked("inline 1".into()));
+        // The pool survives a panic.
+        assert_eq!(pool.run(10, |_| 7).await.unwrap(), 7);
+    }
+}
