@@ -31,7 +31,11 @@ fn main() -> ExitCode {
 fn init_logging(format: LogFormat) {
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    use std::io::IsTerminal as _;
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal());
     match format {
         LogFormat::Text => builder.init(),
         LogFormat::Json => builder.json().init(),

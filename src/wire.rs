@@ -164,8 +164,12 @@ pub fn decode_request(bytes: &[u8]) -> Result<RerankRequest, RequestError> {
             let inner = err.into_inner();
             let message = inner.to_string();
             let path = (path != "." && !path.is_empty()).then_some(path);
+            // A number too large for its field (1e400 as a score, 1e39 as an f32) is reported by
+            // serde_json as a syntax error; it is a field problem, so it keeps its path.
+            let out_of_range = message.starts_with("number out of range");
             Err(match inner.classify() {
                 serde_json::error::Category::Data => RequestError::InvalidField { message, path },
+                _ if out_of_range => RequestError::InvalidField { message, path },
                 _ => RequestError::MalformedJson { message },
             })
         }
@@ -212,6 +216,10 @@ mod tests {
         assert_eq!(e.path().as_deref(), Some("k"));
         let e = decode_request(br#"{"candidates": [], "k": 1, "k": 2}"#).unwrap_err();
         assert!(e.to_string().contains("duplicate field `k`"), "{e}");
+        let e = decode_request(br#"{"candidates":[{"id":"a","score":1e400}]}"#).unwrap_err();
+        assert_eq!((e.code(), e.path().as_deref()), ("invalid_field", Some("candidates[0].score")));
+        let e = decode_request(br#"{"candidates":[{"id":"a","score":1,"embedding":[1e39]}]}"#).unwrap_err();
+        assert_eq!((e.code(), e.path().as_deref()), ("invalid_field", Some("candidates[0].embedding[0]")));
         let e = decode_request(b"{}").unwrap_err();
         assert!(e.to_string().contains("missing field `candidates`"), "{e}");
     }

@@ -1,6 +1,8 @@
 //! Helpers shared by the integration tests: seeded slate generators.
 #![allow(dead_code, unreachable_pub)]
 
+pub mod server;
+
 use medley::{CandidateInput, Limits, RerankInput, ScoreTransform};
 
 /// A small deterministic generator (SplitMix64), so fixtures need no extra dependency.

@@ -1,0 +1,114 @@
+//! Starts the real server on ephemeral loopback ports, the way the binary does (`http::serve`),
+//! and builds request bodies.
+
+use std::net::SocketAddr;
+use std::sync::Arc;
+
+use medley::config::Config;
+use medley::engine::Engine;
+use medley::http::{serve, AppState};
+use medley::metrics::Metrics;
+use medley::shutdown::{self, Trigger};
+use serde_json::{json, Value};
+
+use super::Rng;
+
+/// A running server; dropping it without [`Server::stop`] fires shutdown too.
+pub struct Server {
+    pub base: String,
+    pub admin: String,
+    pub addr: SocketAddr,
+    trigger: Option<Trigger>,
+    task: Option<tokio::task::JoinHandle<std::io::Result<()>>>,
+}
+
+impl Server {
+    /// Serves `config_toml` (listeners replaced by 127.0.0.1:0).
+    pub async fn start(config_toml: &str) -> Self {
+        let config = Config::from_toml(config_toml).expect("test config is valid");
+        let public = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let admin = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let (addr, admin_addr) = (public.local_addr().unwrap(), admin.local_addr().unwrap());
+        let state = AppState::new(Engine::new(config, 1), Arc::new(Metrics::new())).unwrap();
+        let (trigger, token) = shutdown::channel();
+        let task = tokio::spawn(serve(public, admin, state, token));
+        Self {
+            base: format!("http://{addr}"),
+            admin: format!("http://{admin_addr}"),
+            addr,
+            trigger: Some(trigger),
+            task: Some(task),
+        }
+    }
+
+    /// The embedded default config.
+    pub async fn start_default() -> Self {
+        Self::start(medley::config::DEFAULT_TOML).await
+    }
+
+    /// Starts shutdown without waiting.
+    pub fn begin_stop(&self) {
+        if let Some(t) = &self.trigger {
+            t.fire();
+        }
+    }
+
+    /// Fires shutdown and waits until the server has drained.
+    pub async fn stop(mut self) {
+        self.begin_stop();
+        let task = self.task.take().unwrap();
+        tokio::time::timeout(std::time::Duration::from_secs(20), task)
+            .await
+            .expect("server drains within 20 s")
+            .unwrap()
+            .unwrap();
+    }
+
+    /// Waits for a server whose shutdown was already fired.
+    pub async fn join(mut self) -> std::io::Result<()> {
+        let task = self.task.take().unwrap();
+        tokio::time::timeout(std::time::Duration::from_secs(20), task).await.expect("drains").unwrap()
+    }
+
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{path}", self.base)
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        self.begin_stop();
+    }
+}
+
+/// A JSON request with `n` candidates of dimension `d` in `groups` categories.
+pub fn request(rng: &mut Rng, n: usize, d: usize, groups: usize) -> Value {
+    let candidates: Vec<Value> = (0..n)
+        .map(|i| {
+            let e: Vec<f32> = (0..d).map(|_| rng.normal() as f32).collect();
+            json!({"id": format!("item-{i}"), "score": rng.unit(), "category": format!("cat-{}", rng.below(groups)), "embedding": e})
+        })
+        .collect();
+    json!({"candidates": candidates})
+}
+
+/// POSTs JSON and returns (status, body as JSON).
+pub async fn post_json(client: &reqwest::Client, url: &str, body: &Value) -> (u16, Value) {
+    let r = client.post(url).json(body).send().await.unwrap();
+    let status = r.status().as_u16();
+    let text = r.text().await.unwrap();
+    (status, serde_json::from_str(&text).unwrap_or_else(|e| panic!("non-JSON body {text:?}: {e}")))
+}
+
+/// POSTs raw bytes with a content type and returns (status, headers, body text).
+pub async fn post_raw(
+    client: &reqwest::Client,
+    url: &str,
+    content_type: &str,
+    body: impl Into<reqwest::Body>,
+) -> (u16, reqwest::header::HeaderMap, String) {
+    let r = client.post(url).header("content-type", content_type).body(body).send().await.unwrap();
+    let status = r.status().as_u16();
+    let headers = r.headers().clone();
+    (status, headers, r.text().await.unwrap())
+}
