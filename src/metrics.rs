@@ -29,9 +29,9 @@ pub struct Metrics {
     pub requests: IntCounterVec,
     /// `medley_rerank_duration_seconds{slice, algorithm}`: from decoded body to built response.
     pub rerank_duration: HistogramVec,
-    /// `medley_category_entropy_bits{slice, algorithm}`: entropy of every served slate.
+    /// `medley_category_entropy{slice, algorithm}`: entropy of every served slate.
     pub entropy: HistogramVec,
-    /// `medley_last_category_entropy_bits{slice, algorithm}`: entropy of the latest slate.
+    /// `medley_last_category_entropy{slice, algorithm}`: entropy of the latest slate.
     pub last_entropy: GaugeVec,
     /// `medley_last_intra_list_distance{slice, algorithm}`: ILD of the latest slate with embeddings.
     pub last_ild: GaugeVec,
@@ -79,16 +79,16 @@ impl Metrics {
         ));
         let entropy = must(HistogramVec::new(
             HistogramOpts::new(
-                "medley_category_entropy_bits",
-                "Shannon entropy of the categories of each served slate, in bits.",
+                "medley_category_entropy",
+                "Shannon entropy (base 2) of the categories of each served slate.",
             )
             .buckets(ENTROPY_BUCKETS.to_vec()),
             &["slice", "algorithm"],
         ));
         let last_entropy = must(GaugeVec::new(
             Opts::new(
-                "medley_last_category_entropy_bits",
-                "Category entropy of the latest served slate, in bits.",
+                "medley_last_category_entropy",
+                "Shannon entropy (base 2) of the categories of the latest served slate.",
             ),
             &["slice", "algorithm"],
         ));
@@ -195,8 +195,8 @@ mod tests {
         for name in [
             "medley_requests_total{status=\"200\"} 1",
             "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",slice=\"default\",le=\"0.0005\"} 1",
-            "medley_category_entropy_bits_sum{algorithm=\"dpp\",slice=\"default\"} 1.5",
-            "medley_last_category_entropy_bits{algorithm=\"dpp\",slice=\"default\"} 1.5",
+            "medley_category_entropy_sum{algorithm=\"dpp\",slice=\"default\"} 1.5",
+            "medley_last_category_entropy{algorithm=\"dpp\",slice=\"default\"} 1.5",
             "medley_last_intra_list_distance{algorithm=\"dpp\",slice=\"default\"} 0.4",
             "medley_candidates_per_request_count{slice=\"default\"} 1",
             "medley_panics_total 0",
