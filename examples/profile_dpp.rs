@@ -1,13 +1,18 @@
-//! Runs DPP at (N, d, k) = (2 000, 128, 100) in a loop and prints the mean time per call; for
+//! Runs DPP in a loop and prints the mean time per call; for
 //! `perf record ./target/release/examples/profile_dpp` when tuning the kernel.
 //!
-//! Run: `cargo run --release --example profile_dpp`
+//! Run: `cargo run --release --example profile_dpp -- [N D K [clustered]]` (default 2000 128 100,
+//! unclustered random rows; `clustered` uses the bench's 8-cluster slates).
 
 use medley::diversify::{Diversifier, Dpp};
 use medley::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 
 fn main() {
-    let (n, d, k, calls) = (2_000, 128, 100, 200);
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let arg = |i: usize, default: usize| args.get(i).and_then(|a| a.parse().ok()).unwrap_or(default);
+    let (n, d, k) = (arg(0, 2_000), arg(1, 128), arg(2, 100) as u64);
+    let clustered = args.get(3).is_some_and(|a| a == "clustered");
+    let calls = (400_000_000 / (n * (d + k as usize) * k as usize)).clamp(20, 20_000) as u32;
     let mut state = 1u64;
     let mut next = || {
         state ^= state << 13;
@@ -20,7 +25,11 @@ fn main() {
             id: format!("i{i}"),
             score: next(),
             category: None,
-            embedding: Some((0..d).map(|_| (next() - 0.5) as f32).collect()),
+            embedding: Some(
+                (0..d)
+                    .map(|t| (next() - 0.5 + if clustered && t % 8 == i % 8 { 1.0 } else { 0.0 }) as f32)
+                    .collect(),
+            ),
         })
         .collect();
     let input =

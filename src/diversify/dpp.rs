@@ -12,46 +12,62 @@ pub const EPSILON: f64 = 1e-9;
 
 /// Greedy DPP MAP: each step picks `argmax_i (1 − λ)·s_i + λ·ln d_i²`.
 ///
-/// Legend: `s_i` normalised score; `λ` the request's `lambda`; `S_ij = cos(i, j)` the similarity
-/// kernel on unit embeddings; `c_i` item i's row of the Cholesky factor of `S` restricted to the
-/// slate so far; `d_i²` its residual (Schur complement), `d_i² = S_ii − ‖c_i‖²`.
+/// Legend: `s_i` normalised score; `λ` the request's `lambda`; `x_i` candidate i's unit embedding;
+/// `S_ij = cos(i, j) = ⟨x_i, x_j⟩` the similarity kernel; `c_i` item i's row of the Cholesky
+/// factor of `S` restricted to the slate so far; `d_i²` its residual (Schur complement),
+/// `d_i² = S_ii − ‖c_i‖²`; `q_1..q_t` an orthonormal basis of the picked embeddings.
 ///
 /// # Reference
 /// L. Chen, G. Zhang and H. Zhou, "Fast Greedy MAP Inference for Determinantal Point Process to
-/// Improve Recommendation Diversity", NeurIPS 2018, Algorithm 1. Update after picking `j`:
-/// `e_i = (S_ij − ⟨c_j, c_i⟩) / d_j`, `c_i ← [c_i, e_i]`, `d_i² ← d_i² − e_i²`.
+/// Improve Recommendation Diversity", NeurIPS 2018, Algorithm 1. Update after picking `j` as the
+/// t-th item: `e_i = (S_ij − ⟨c_j, c_i⟩) / d_j`, `c_i ← [c_i, e_i]`, `d_i² ← d_i² − e_i²`.
 /// The objective is the log of the paper's gain for the kernel `L = Diag(exp(α·s)) S Diag(exp(α·s))`
 /// with `α = (1 − λ)/(2λ)`, scaled by `λ`: `ln det L_{S∪{i}} − ln det L_S = 2α·s_i + ln d_i²`.
-/// Working in log space never overflows. Deviations: (1) candidates with `d_i² < EPSILON` are
-/// skipped rather than ending the run, and the run ends (filling by score) only when no remaining
-/// candidate is above it; (2) `S` is the cosine of the stored f32 rows taken in f64 (inverse norms
-/// kept exactly), so `S_ii = 1` and `S` stays a PSD Gram matrix despite f32 rounding.
+/// Working in log space never overflows.
+///
+/// Deviations: (1) candidates with `d_i² < EPSILON` are skipped rather than ending the run, and
+/// the run ends (filling by score) only when no remaining candidate is above it; (2) `S` is the
+/// cosine of the stored f32 rows taken in f64 (inverse norms kept exactly), so `S_ii = 1` and `S`
+/// stays a PSD Gram matrix despite f32 rounding; (3) `e_i` is computed in an equivalent form that
+/// needs no factor rows. Because `S = X Xᵀ` is a Gram matrix, the Cholesky row `c_i` holds the
+/// coordinates of `x_i` in the Gram–Schmidt basis of the picked rows (Cholesky of `X_Y X_Yᵀ` is
+/// the R of the QR of `X_Yᵀ`), so with `q_t = (x_j − Σ_{s<t} e_{j,s} q_s) / d_j`,
+/// `e_i = (⟨x_i, x_j⟩ − ⟨c_j, c_i⟩) / d_j = ⟨x_i, q_t⟩`: one length-d dot product per candidate
+/// and pick instead of a length-d plus a length-t one, against a basis that sits in L1 cache.
+/// `q_t` is built by Gram–Schmidt applied twice (L. Giraud, J. Langou, M. Rozložník,
+/// "The loss of orthogonality in the Gram–Schmidt orthogonalization process", Computers &
+/// Mathematics with Applications 50, 2005: "twice is enough"), which keeps the basis orthonormal
+/// to working precision. The slow `reference::dpp` re-factorises `S_Y` with a textbook Cholesky
+/// at every step, and the tests hold this kernel to it and to nalgebra determinants.
 ///
 /// Evaluated lazily (M. Minoux, "Accelerated greedy algorithms for maximizing submodular set
 /// functions", Optimization Techniques, LNCS 7, 1978): the objective is a modular term plus
 /// `λ·ln det`, which is submodular, so each candidate's value only falls as the slate grows. A
 /// max-heap holds stale values as upper bounds; only the candidate on top is brought up to date
-/// (its missing factor entries computed), and it is taken once its fresh value still beats every
-/// other bound. The picks are exactly those of the eager algorithm (same objective, same tie rule).
+/// (projected on the basis vectors it has not seen), and it is taken once its fresh value still
+/// beats every other bound. The picks are exactly those of the eager algorithm (same objective,
+/// same tie rule).
 ///
 /// # Complexity
-/// Worst case O(N·k·(d + k)) time, as the eager form: every candidate refreshed at every step.
-/// Typically far less, since candidates whose bound sinks below the winners are never refreshed.
-/// O(N·(k + d)) extra memory (factor rows and f64 copies of the unit rows); the N×N kernel is
-/// never built. Heap operations add O(log N) per pop.
+/// Worst case O(N·k·d + k²·d) time: every candidate refreshed at every step, plus building each
+/// basis vector (O(t·d) for the t-th). Typically far less, since candidates whose bound sinks
+/// below the winners are never refreshed. O(N·d + k·d) extra memory (f64 copies of the unit rows
+/// and the basis); the N×N kernel is never built and no factor rows are stored. Heap operations
+/// add O(log N) per pop.
 ///
 /// # Invariants
-/// `S` is symmetric PSD by construction (a Gram matrix); the factor is lower-triangular with a
-/// positive diagonal (`d_j > sqrt(EPSILON)` at every pivot); no residual grows from one step to the
-/// next (each update subtracts a square); output has no duplicates and at most `min(k, N)` items.
-/// `Σ ln(gains)` over the DPP-chosen prefix equals `ln det S_Y` for that prefix.
+/// `S` is symmetric PSD by construction (a Gram matrix); the implied factor is lower-triangular
+/// with a positive diagonal (`d_j > sqrt(EPSILON)` at every pivot); the basis is orthonormal; no
+/// residual grows from one step to the next (each update subtracts a square); output has no
+/// duplicates and at most `min(k, N)` items. `Σ ln(gains)` over the DPP-chosen prefix equals
+/// `ln det S_Y` for that prefix.
 ///
 /// # Numerical notes
-/// Similarity, factor and residuals are f64, which keeps an exhausted residual near 1e-15 instead
-/// of the ~1e-7 noise f32 sums would leave, so `EPSILON` means what it says. The unit rows are
-/// widened to f64 once per call (refreshes read rows in heap order, where widening on every read
-/// would repeat the conversion). The factor is stored row per candidate, `c_i` contiguous.
-/// Heap order is value, then lower index, so ties go to the lower index as everywhere.
+/// Rows, basis, projections and residuals are f64, which keeps an exhausted residual near 1e-15
+/// instead of the ~1e-7 noise f32 sums would leave, so `EPSILON` means what it says. The unit rows
+/// are widened to f64 once per call (refreshes read rows in heap order, where widening on every
+/// read would repeat the conversion). The whole loop runs inside one SIMD dispatch. Heap order is
+/// value, then lower index, so ties go to the lower index as everywhere.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct Dpp;
 
@@ -70,7 +86,27 @@ impl Diversifier for Dpp {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
-        let (n, d) = (input.len(), emb.dim());
+        Ok(Arch::new().dispatch(Greedy { input, params, ws, d: emb.dim() }))
+    }
+}
+
+/// The greedy loop, run inside one SIMD dispatch so the inner dot products inline.
+struct Greedy<'a> {
+    input: &'a RerankInput,
+    params: &'a Params,
+    ws: &'a mut Workspace,
+    d: usize,
+}
+
+impl WithSimd for Greedy<'_> {
+    type Output = Selection;
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, simd: S) -> Selection {
+        let Self { input, params, ws, d } = self;
+        let emb = input.embeddings().expect("select checked for embeddings");
+        let lambda = params.lambda();
+        let n = input.len();
         let m = params.k().min(n);
         let s = input.normalized();
         ws.reset(n, input.group_count());
@@ -80,15 +116,13 @@ impl Diversifier for Dpp {
         for (row, &inv) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()) {
             ws.wide.extend(row.iter().map(|&x| f64::from(x) * inv));
         }
-        // Factor rows: candidate i's c_i is factor[i·stride ..][..filled[i]].
-        let stride = m.saturating_sub(1).max(1);
-        ws.factor.clear();
-        ws.factor.resize(n * stride, 0.0);
+        // Basis vector t is basis[t·d ..][..d]; at most m − 1 are ever needed.
+        ws.basis.clear();
+        ws.basis.reserve(m.saturating_sub(1) * d);
         ws.filled.clear();
         ws.filled.resize(n, 0);
         ws.running.clear();
         ws.running.resize(n, 1.0);
-        ws.inv_pivot.clear();
         ws.heap.clear();
         ws.heap.extend((0..n).map(|i| Bound { value: (1.0 - lambda) * s[i], index: i }));
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
@@ -106,18 +140,13 @@ impl Diversifier for Dpp {
                 continue;
             }
             if ws.filled[i] < step {
-                let refresh = Refresh {
-                    wide: &ws.wide,
-                    d,
-                    factor: &mut ws.factor,
-                    stride,
-                    i,
-                    from: ws.filled[i],
-                    picks: &sel.indices,
-                    inv_dj: &ws.inv_pivot,
-                    d2: &mut ws.running[i],
-                };
-                Arch::new().dispatch(refresh);
+                let xi = &ws.wide[i * d..(i + 1) * d];
+                let mut d2 = ws.running[i];
+                for q in ws.basis[ws.filled[i] * d..step * d].chunks_exact(d) {
+                    let e = dot(simd, xi, q);
+                    d2 -= e * e;
+                }
+                ws.running[i] = d2;
                 ws.filled[i] = step;
             }
             let d2 = ws.running[i];
@@ -131,42 +160,33 @@ impl Diversifier for Dpp {
                 continue;
             }
             take(input, ws, &mut sel, i, d2);
-            ws.inv_pivot.push(1.0 / d2.sqrt());
+            if sel.indices.len() < m {
+                push_basis_vector(simd, &ws.wide[i * d..(i + 1) * d], &mut ws.basis, &mut ws.scratch, d);
+            }
         }
-        Ok(sel)
+        sel
     }
 }
 
-/// Brings candidate `i`'s factor row and residual up to date with picks `from..picks.len()`:
-/// Algorithm 1's update `e = (S_ij − ⟨c_j, c_i⟩)/d_j; c_i ← [c_i, e]; d_i² ← d_i² − e²` for each
-/// pick `j` it has not seen yet, in pick order. O(Δ·(d + k)) for Δ missed picks.
-struct Refresh<'a> {
-    wide: &'a [f64],
-    d: usize,
-    factor: &'a mut [f64],
-    stride: usize,
-    i: usize,
-    from: usize,
-    picks: &'a [usize],
-    inv_dj: &'a [f64],
-    d2: &'a mut f64,
-}
-
-impl WithSimd for Refresh<'_> {
-    type Output = ();
-
-    #[inline(always)]
-    fn with_simd<S: Simd>(self, simd: S) {
-        let Self { wide, d, factor, stride, i, from, picks, inv_dj, d2 } = self;
-        let xi = &wide[i * d..(i + 1) * d];
-        for (q, &j) in picks.iter().enumerate().skip(from) {
-            let cos = dot(simd, xi, &wide[j * d..(j + 1) * d]);
-            let inner = dot(simd, &factor[j * stride..j * stride + q], &factor[i * stride..i * stride + q]);
-            let e = (cos - inner) * inv_dj[q];
-            factor[i * stride + q] = e;
-            *d2 -= e * e;
+/// Appends `x` orthogonalised against the basis and normalised: modified Gram–Schmidt, two sweeps.
+/// O(t·d) for a basis of t vectors.
+#[inline(always)]
+fn push_basis_vector<S: Simd>(simd: S, x: &[f64], basis: &mut Vec<f64>, r: &mut Vec<f64>, d: usize) {
+    r.clear();
+    r.extend_from_slice(x);
+    // Two sweeps: the second removes what rounding left of the first's projections.
+    for _sweep in 0..2 {
+        for q in basis.chunks_exact(d) {
+            let c = dot(simd, r, q);
+            for (rv, &qv) in r.iter_mut().zip(q) {
+                *rv -= c * qv;
+            }
         }
     }
+    let norm = dot(simd, r, r).sqrt();
+    debug_assert!(norm > 0.0, "a picked candidate has residual above EPSILON");
+    let inv = 1.0 / norm;
+    basis.extend(r.iter().map(|&v| v * inv));
 }
 
 /// f64 dot product with two FMA chains.
@@ -187,3 +207,4 @@ fn dot<S: Simd>(simd: S, a: &[f64], b: &[f64]) -> f64 {
     let tail: f64 = at.iter().zip(bt).map(|(x, y)| x * y).sum();
     simd.reduce_sum_f64s(simd.add_f64s(acc0, acc1)) + tail
 }
+

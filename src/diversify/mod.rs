@@ -90,8 +90,6 @@ pub struct Workspace {
     taken: Vec<bool>,
     /// Candidate indices in some order (relevance order, per-group queues).
     order: Vec<usize>,
-    /// DPP: `1/d_j` of every pick, in pick order.
-    inv_pivot: Vec<f64>,
     /// DPP: unit rows widened to f64, row-major N × d.
     wide: Vec<f64>,
     /// Lazy kernels: how many picks each candidate's state has seen.
@@ -100,8 +98,10 @@ pub struct Workspace {
     heap: std::collections::BinaryHeap<Bound>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
-    /// DPP Cholesky factor, one row of up to k − 1 entries per candidate.
-    factor: Vec<f64>,
+    /// DPP: orthonormal basis of the picked rows, one d-length row per pick.
+    basis: Vec<f64>,
+    /// DPP: the vector being orthogonalised.
+    scratch: Vec<f64>,
     /// Items taken per group, for caps and quotas.
     group_taken: Vec<usize>,
 }
