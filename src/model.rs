@@ -248,7 +248,13 @@ impl RerankInput {
     /// `require_embeddings` is set by callers whose algorithm needs embeddings (MMR, DPP).
     ///
     /// # Errors
-    /// The first [`ValidationError`] found, scanning candidates in order.
+    /// [`ValidationError::TooManyCandidates`] first, then the first repeated id
+    /// ([`ValidationError::DuplicateId`]), then the first other error scanning candidates in order.
+    ///
+    /// # Complexity
+    /// O(N·d) time. Allocates the slate's own arrays plus one id index for the duplicate check;
+    /// category strings are moved, never copied, and each distinct category is hashed once per
+    /// candidate.
     pub fn new(
         candidates: Vec<CandidateInput>,
         transform: ScoreTransform,
@@ -276,18 +282,25 @@ impl RerankInput {
             return Err(ValidationError::DimensionOutOfRange { index: 0, got: dim, max: limits.max_dim });
         }
 
+        // Duplicate ids first, borrowing the ids, so no id string is copied.
+        {
+            let mut first_index: HashMap<&str, usize> = HashMap::with_capacity(n);
+            for (index, c) in candidates.iter().enumerate() {
+                if let Some(&first) = first_index.get(c.id.as_str()) {
+                    return Err(ValidationError::DuplicateId { id: c.id.clone(), first, index });
+                }
+                first_index.insert(&c.id, index);
+            }
+        }
+
         let mut ids = Vec::with_capacity(n);
         let mut scores = Vec::with_capacity(n);
         let mut groups = Vec::with_capacity(n);
         let mut group_names: Vec<Option<String>> = Vec::new();
         let mut group_of: HashMap<Option<String>, u32> = HashMap::new();
-        let mut first_index: HashMap<String, usize> = HashMap::with_capacity(n);
         let mut data = Vec::with_capacity(if any_embedding { n * dim } else { 0 });
 
         for (index, c) in candidates.into_iter().enumerate() {
-            if let Some(&first) = first_index.get(&c.id) {
-                return Err(ValidationError::DuplicateId { id: c.id, first, index });
-            }
             if !c.score.is_finite() {
                 return Err(ValidationError::NonFinite { index, field: Field::Score });
             }
@@ -310,14 +323,17 @@ impl RerankInput {
                     push_unit_row(&e, index, &mut data)?;
                 }
             }
-            let next = u32::try_from(group_names.len()).unwrap_or(u32::MAX);
-            let group = *group_of.entry(c.category.clone()).or_insert_with(|| {
-                group_names.push(c.category);
-                next
-            });
+            let group = match group_of.get(&c.category) {
+                Some(&g) => g,
+                None => {
+                    let g = u32::try_from(group_names.len()).unwrap_or(u32::MAX);
+                    group_names.push(c.category.clone());
+                    group_of.insert(c.category, g);
+                    g
+                }
+            };
             groups.push(group);
             scores.push(c.score);
-            first_index.insert(c.id.clone(), index);
             ids.push(c.id);
         }
 

@@ -182,16 +182,23 @@ pub fn decode_request(bytes: &[u8]) -> Result<RerankRequest, RequestError> {
 /// A reason string when the text is not base64 or its byte length is not a multiple of 4.
 pub fn decode_b64_embedding(text: &str) -> Result<Vec<f32>, String> {
     use base64::Engine as _;
-    let bytes = base64::engine::general_purpose::STANDARD
-        .decode(text)
-        .map_err(|e| format!("not standard base64: {e}"))?;
-    if bytes.len() % 4 != 0 {
-        return Err(format!(
-            "decodes to {} bytes, which is not a whole number of f32 values (4 bytes each)",
-            bytes.len()
-        ));
+    thread_local! {
+        // Decoded bytes of the current embedding; reused so each candidate allocates only its f32s.
+        static BYTES: std::cell::RefCell<Vec<u8>> = const { std::cell::RefCell::new(Vec::new()) };
     }
-    Ok(bytes.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect())
+    BYTES.with_borrow_mut(|bytes| {
+        bytes.clear();
+        base64::engine::general_purpose::STANDARD
+            .decode_vec(text, bytes)
+            .map_err(|e| format!("is not standard base64: {e}"))?;
+        if bytes.len() % 4 != 0 {
+            return Err(format!(
+                "decodes to {} bytes, which is not a whole number of f32 values (4 bytes each)",
+                bytes.len()
+            ));
+        }
+        Ok(bytes.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect())
+    })
 }
 
 /// Encodes an embedding as `embedding_b64` (for clients and tests).

@@ -1,0 +1,78 @@
+//! Service-path benchmarks: decoding one (500, 64) request with JSON-array embeddings vs
+//! `embedding_b64`, validating it into a slate, and the cost of handing a job to the kernel pool
+//! versus running it inline (which sets `pool::INLINE_WORK_BELOW`).
+//!
+//! Run: `cargo bench --bench service`
+
+// criterion_group! generates undocumented items.
+#![allow(missing_docs)]
+
+use std::hint::black_box;
+use std::time::Duration;
+
+use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use medley::config::Config;
+use medley::engine::Engine;
+use medley::pool::Pool;
+use medley::wire::{decode_request, encode_b64_embedding};
+use serde_json::json;
+
+/// One request body of `n` candidates in dimension `d`, embeddings as JSON arrays or base64.
+fn body(n: usize, d: usize, b64: bool) -> Vec<u8> {
+    let mut state = 0x5EED_u64;
+    let mut next = move || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        (state >> 11) as f64 / (1u64 << 53) as f64
+    };
+    let candidates: Vec<_> = (0..n)
+        .map(|i| {
+            let e: Vec<f32> = (0..d).map(|_| (next() - 0.5) as f32).collect();
+            let mut c =
+                json!({"id": format!("tent-{i:04}"), "score": next(), "category": format!("cat-{}", i % 6)});
+            if b64 {
+                c["embedding_b64"] = json!(encode_b64_embedding(&e));
+            } else {
+                c["embedding"] = json!(e);
+            }
+            c
+        })
+        .collect();
+    serde_json::to_vec(&json!({"algorithm": "dpp", "lambda": 0.3, "k": 50, "candidates": candidates}))
+        .unwrap()
+}
+
+fn decode(c: &mut Criterion) {
+    let engine = Engine::new(Config::embedded_default(), 1);
+    let mut group = c.benchmark_group("decode_N500_d64");
+    group.warm_up_time(Duration::from_secs(1)).measurement_time(Duration::from_secs(3)).sample_size(40);
+    for (name, b64) in [("json", false), ("b64", true)] {
+        let bytes = body(500, 64, b64);
+        group.throughput(Throughput::Bytes(bytes.len() as u64));
+        group.bench_function(format!("{name}_decode"), |b| {
+            b.iter(|| black_box(decode_request(black_box(&bytes)).unwrap()))
+        });
+        group.bench_function(format!("{name}_decode_and_validate"), |b| {
+            b.iter(|| black_box(engine.prepare(decode_request(black_box(&bytes)).unwrap()).unwrap()))
+        });
+    }
+    group.finish();
+}
+
+fn handoff(c: &mut Criterion) {
+    let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(1).enable_all().build().unwrap();
+    let pool = Pool::new(1, 1).unwrap();
+    let mut group = c.benchmark_group("pool");
+    group.warm_up_time(Duration::from_secs(1)).measurement_time(Duration::from_secs(3));
+    group.bench_function("inline_empty_job", |b| {
+        b.iter(|| runtime.block_on(async { black_box(pool.run(0, |_| 1_u8).await.unwrap()) }))
+    });
+    group.bench_function("pool_empty_job", |b| {
+        b.iter(|| runtime.block_on(async { black_box(pool.run(u64::MAX, |_| 1_u8).await.unwrap()) }))
+    });
+    group.finish();
+}
+
+criterion_group!(benches, decode, handoff);
+criterion_main!(benches);
