@@ -3,7 +3,8 @@
 //! practical roofline for this memory-bound work.
 //!
 //! Throughput is reported as elements = floating-point operations (2 per multiply-add), with the
-//! nominal counts N·k·(d + k) multiply-adds for DPP, N·k·d for MMR and the GEMV. Run
+//! nominal counts N·k·d + 2·k²·d multiply-adds for DPP (every candidate projected on every basis
+//! vector, plus two Gram–Schmidt sweeps per basis vector), N·k·d for MMR and the GEMV. Run
 //! `cargo bench --bench kernels`, then `python3 benches/report.py` for the README table.
 #![allow(unsafe_code, missing_docs)]
 
@@ -47,9 +48,9 @@ fn kernels(c: &mut Criterion) {
         let params = Params::new(k as u64, 0.5, &Limits::default()).unwrap();
         let mut group = c.benchmark_group(format!("N{n}_d{d}_k{k}"));
         group.warm_up_time(Duration::from_secs(1)).measurement_time(Duration::from_secs(3)).sample_size(40);
-        let macs = |extra: usize| (2 * n * k * (d + extra)) as u64;
+        let macs = |extra: usize| (2 * (n * k * d + extra)) as u64;
         for (algo, flops) in
-            [(&Dpp as &dyn Diversifier, macs(k)), (&Mmr, macs(0)), (&Quota, 0), (&Relevance, 0)]
+            [(&Dpp as &dyn Diversifier, macs(2 * k * k * d)), (&Mmr, macs(0)), (&Quota, 0), (&Relevance, 0)]
         {
             if flops > 0 {
                 group.throughput(Throughput::Elements(flops));

@@ -119,7 +119,7 @@ pub struct ServerSettings {
     pub pool_threads: usize,
     /// Stream lines in flight per stream.
     pub stream_in_flight: usize,
-    /// Inline cut-off in work units (see [`crate::pool::work_estimate`]).
+    /// Inline cut-off in work units (see [`crate::Diversifier::work`]).
     pub inline_work_below: u64,
 }
 

@@ -282,11 +282,11 @@ pub struct Prepared {
 }
 
 impl Prepared {
-    /// Estimated kernel work ([`crate::pool::work_estimate`]).
+    /// Estimated kernel work ([`Diversifier::work`]).
     #[must_use]
     pub fn work(&self) -> u64 {
         let d = self.input.embeddings().map_or(0, |e| e.dim());
-        crate::pool::work_estimate(self.algorithm.name(), self.input.len(), d, self.params.k())
+        self.algorithm.work(self.input.len(), d, self.params.k())
     }
 
     /// Runs the diversifier and measures the slate.

@@ -6,8 +6,24 @@
 //! - [`diversify`]: the [`Diversifier`] trait, the registry of algorithms (relevance, MMR, DPP,
 //!   quota), their SIMD inner loops and slow reference versions.
 //! - [`measures`]: category entropy, intra-list distance, coverage and Gini.
+//! - [`config`]: the TOML config, validated into slices and server settings.
+//! - [`wire`]: the JSON request, response and error DTOs.
+//! - [`engine`]: a config snapshot that turns a wire request into validated input and serves it.
+//! - [`pool`]: the bounded CPU pool kernels run on.
+//! - [`http`]: routers, middleware and [`http::serve`]; [`metrics`] and [`shutdown`] beside it.
+//! - [`batch`]: JSONL in, JSONL out, on every core; [`cli`]: the command-line types.
 //!
-//! # One call
+//! # One request
+//! `POST /v1/rerank` reaches [`http`], whose middleware counts it and takes a concurrency permit
+//! (or answers 503). The handler reads the body under the size limit, loads the live
+//! [`engine::Engine`] snapshot once, and [`engine::Engine::prepare`] decodes the JSON
+//! ([`wire`]), resolves the slice and its defaults and validates everything into a
+//! [`RerankInput`] and [`Params`]. The kernel runs on the [`pool`] (inline when the slate is
+//! small), the [`measures`] describe the slate, and the handler records
+//! `medley_rerank_duration_seconds` and the diversity metrics before answering. `medley rerank`
+//! ([`batch`]) runs the same `prepare` and `run` on JSONL lines without a runtime.
+//!
+//! # One call of the core
 //! A caller builds [`RerankInput`] from its candidates (unique ids, finite scores, embeddings of
 //! one dimension, normalised to unit length; scores min-max normalised unless told otherwise) and
 //! [`Params`] (k, lambda), looks the algorithm up with [`diversify::by_name`], and calls

@@ -14,10 +14,11 @@ use crate::diversify::Workspace;
 
 /// Default inline cut-off in work units.
 ///
-/// A work unit is roughly one multiply-add of the kernel ([`work_estimate`]); DPP at
-/// (N, d, k) = (500, 64, 50) is 2.85 M units and ran in about 430 µs on the 2-vCPU dev VM, so
-/// kernels do several thousand units per µs. The cut-off sits where the kernel costs about as
-/// much as the hop to the pool and back (DEVELOPERS.md, "Inline cut-off", has the measurement).
+/// A work unit is roughly one multiply-add of the kernel ([`crate::Diversifier::work`]); DPP at
+/// (N, d, k) = (500, 64, 50) is 1.9 M units and ran in 400–550 µs on the 2-vCPU dev VM, so
+/// 100 000 units is about 25 µs of kernel, about four times the 6 µs hop to the pool and back:
+/// below it the hop is a large share of the work, and a stall that short does not hurt the
+/// async worker (DEVELOPERS.md, "Inline cut-off", has the measurement).
 pub const INLINE_WORK_BELOW: u64 = 100_000;
 
 thread_local! {
@@ -30,21 +31,6 @@ pub enum PoolError {
     /// The job panicked; the message is the panic payload when it was a string.
     #[error("the kernel panicked: {0}")]
     Panicked(String),
-}
-
-/// Estimated kernel work for a slate of `n` candidates of dimension `d`, choosing `k`.
-///
-/// Relevance and quota sort: about `n·log2 n`. MMR and DPP touch every remaining candidate's
-/// embedding once per pick: about `n·k·(d + k)` (the Cholesky row adds the `k` term for DPP; MMR's
-/// lazy evaluation usually does far less, so this over-estimates it, which only errs toward the
-/// pool).
-#[must_use]
-pub fn work_estimate(algorithm: &str, n: usize, d: usize, k: usize) -> u64 {
-    let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);
-    match algorithm {
-        "mmr" | "dpp" => n.saturating_mul(k).saturating_mul(d.saturating_add(k)),
-        _ => n.saturating_mul(u64::from(64 - n.leading_zeros())),
-    }
 }
 
 /// The kernel pool.
@@ -138,10 +124,13 @@ mod tests {
 
     #[test]
     fn estimates_order_algorithms_by_cost() {
-        assert_eq!(work_estimate("dpp", 500, 64, 50), 500 * 50 * 114);
-        assert_eq!(work_estimate("relevance", 1024, 64, 50), 1024 * 11);
-        assert_eq!(work_estimate("dpp", 0, 64, 50), 0);
-        assert!(work_estimate("dpp", 10, 4, 5) < INLINE_WORK_BELOW);
+        use crate::diversify::by_name;
+        let (dpp, relevance) = (by_name("dpp").unwrap(), by_name("relevance").unwrap());
+        assert_eq!(dpp.work(500, 64, 50), 500 * 50 * 64 + 2 * 50 * 50 * 64);
+        assert_eq!(relevance.work(1024, 64, 50), 1024 * 11);
+        assert_eq!(dpp.work(0, 64, 50), 0);
+        assert!(dpp.work(10, 4, 5) < INLINE_WORK_BELOW);
+        assert!(dpp.work(500, 64, 50) > INLINE_WORK_BELOW);
     }
 
     #[tokio::test]

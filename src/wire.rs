@@ -162,7 +162,12 @@ pub fn decode_request(bytes: &[u8]) -> Result<RerankRequest, RequestError> {
             };
             let path = err.path().to_string();
             let inner = err.into_inner();
-            let message = inner.to_string();
+            // serde names Rust types; callers think in JSON types.
+            let message = inner
+                .to_string()
+                .replace("expected f64", "expected a number")
+                .replace("expected f32", "expected a number")
+                .replace("expected u64", "expected a whole number >= 0");
             let path = (path != "." && !path.is_empty()).then_some(path);
             // A number too large for its field (1e400 as a score, 1e39 as an f32) is reported by
             // serde_json as a syntax error; it is a field problem, so it keeps its path.
@@ -219,6 +224,7 @@ mod tests {
             .unwrap_err();
         assert_eq!(e.code(), "invalid_field");
         assert_eq!(e.path().as_deref(), Some("candidates[1].score"));
+        assert!(e.to_string().contains("expected a number"), "{e}");
         let e = decode_request(br#"{"k": 2.5, "candidates": []}"#).unwrap_err();
         assert_eq!(e.path().as_deref(), Some("k"));
         let e = decode_request(br#"{"candidates": [], "k": 1, "k": 2}"#).unwrap_err();

@@ -597,3 +597,40 @@ async fn a_stream_response_starts_before_its_request_ends() {
     drop(tx);
     server.stop().await;
 }
+
+/// README "Try it": the example request and the slate the README shows for it.
+#[tokio::test]
+async fn readme_example_slate() {
+    let server = Server::start_default().await;
+    let client = reqwest::Client::new();
+    let body: Value = serde_json::from_str(include_str!(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/examples/requests/tents.json"
+    )))
+    .unwrap();
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!(status, 200);
+    let ids: Vec<&str> = r["items"].as_array().unwrap().iter().map(|i| i["id"].as_str().unwrap()).collect();
+    assert_eq!(ids, ["tent-204", "stove-07", "boot-552", "tent-311"]);
+    assert_eq!(r["diversity"]["category_entropy_bits"], 1.5);
+    assert_eq!(r["diversity"]["distinct_categories"], 3);
+    let mut by_score = body.clone();
+    by_score["lambda"] = json!(0.0);
+    let (_, r) = post_json(&client, &server.url("/v1/rerank"), &by_score).await;
+    let ids: Vec<&str> = r["items"].as_array().unwrap().iter().map(|i| i["id"].as_str().unwrap()).collect();
+    assert_eq!(ids, ["tent-204", "tent-311", "tent-118", "stove-07"]);
+    // The README's stream example: the second line is answered with invalid_field in place.
+    let (status, _, text) = post_raw(
+        &client,
+        &server.url("/v1/rerank/stream"),
+        "application/x-ndjson",
+        include_str!(concat!(env!("CARGO_MANIFEST_DIR"), "/examples/requests/mixed.ndjson")),
+    )
+    .await;
+    assert_eq!(status, 200);
+    let lines: Vec<Value> = text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(lines.len(), 3);
+    assert_eq!(lines[1]["error"]["path"], "candidates[0].score");
+    assert_eq!(lines[1]["line"], 2);
+    server.stop().await;
+}

@@ -80,6 +80,12 @@ impl Diversifier for Dpp {
         true
     }
 
+    /// `N·k·d + 2·k²·d`: every candidate projected on every basis vector, plus the basis.
+    fn work(&self, n: usize, d: usize, k: usize) -> u64 {
+        let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);
+        (n * k).saturating_mul(d) + 2 * k * k * d
+    }
+
     fn select(&self, input: &RerankInput, params: &Params, ws: &mut Workspace) -> Result<Selection, KernelError> {
         let lambda = params.lambda();
         if lambda == 0.0 || input.is_empty() {

@@ -46,6 +46,12 @@ impl Diversifier for Mmr {
         true
     }
 
+    /// `N·k·d`: the eager count; lazy evaluation usually does less.
+    fn work(&self, n: usize, d: usize, k: usize) -> u64 {
+        let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);
+        (n * k).saturating_mul(d)
+    }
+
     fn select(&self, input: &RerankInput, params: &Params, ws: &mut Workspace) -> Result<Selection, KernelError> {
         let lambda = params.lambda();
         if lambda == 0.0 || input.is_empty() {

@@ -42,6 +42,15 @@ pub trait Diversifier: Send + Sync + std::fmt::Debug {
     /// True when the algorithm compares embeddings (validation then requires them).
     fn needs_embeddings(&self) -> bool;
 
+    /// Estimated work, in multiply-adds or comparisons, for `n` candidates of dimension `d`
+    /// choosing `k`; the service uses it to decide whether a slate is worth a hop to its pool.
+    /// The default suits sort-like algorithms: `n·log2(n)`.
+    fn work(&self, n: usize, d: usize, k: usize) -> u64 {
+        let _ = (d, k);
+        let n = n as u64;
+        n.saturating_mul(u64::from(64 - n.leading_zeros()))
+    }
+
     /// Chooses the slate. Assumes `input` and `params` were validated by their constructors.
     ///
     /// # Errors
