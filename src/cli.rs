@@ -40,6 +40,10 @@ pub enum Command {
         /// Private (metrics, health, admin) listener address; overrides server.admin_listen.
         #[arg(long)]
         admin_listen: Option<SocketAddr>,
+        /// File where slices set through the admin API persist (read at start, rewritten
+        /// atomically on each change); without it they are lost on restart.
+        #[arg(long)]
+        overlay: Option<PathBuf>,
     },
     /// Re-rank a JSONL file of requests into a JSONL file of responses, on all cores.
     Rerank {

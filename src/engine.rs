@@ -7,7 +7,10 @@
 //! directly. Every failure is a [`RequestError`] carrying a stable code and the JSON path at
 //! fault; the HTTP layer only adds a status.
 
-use crate::config::{Config, Slice, DEFAULT_SLICE};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+
+use crate::config::{Config, Shadow, DEFAULT_SLICE};
 use crate::diversify::{self, Diversifier, KernelError, Workspace};
 use crate::measures;
 use crate::model::{CandidateInput, Field, Params, RerankInput, Selection, ValidationError};
@@ -194,21 +197,23 @@ impl Engine {
                 ("k", request.k.is_some()),
             ];
             if let Some(&(field, _)) = overrides.iter().find(|(_, set)| *set) {
-                return Err(RequestError::SliceLocked { slice: slice.name.clone(), field });
+                return Err(RequestError::SliceLocked { slice: slice.name.to_string(), field });
             }
         }
+        let arm = slice.arm_for(request.unit_id.as_deref());
+        let st = &arm.settings;
         let algorithm = match request.algorithm.as_deref() {
-            None => slice.algorithm,
+            None => st.algorithm,
             Some(name) => diversify::by_name(name).ok_or_else(|| RequestError::UnknownAlgorithm {
                 name: name.to_owned(),
                 known: diversify::names().collect::<Vec<_>>().join(", "),
             })?,
         };
         let limits = &self.config.server.limits;
-        let params =
-            Params::new(request.k.unwrap_or(slice.k), request.lambda.unwrap_or(slice.lambda), limits)
-                .map_err(|error| RequestError::Invalid { error, b64: false })?
-                .with_max_per_category(slice.max_per_category);
+        let k = request.k.unwrap_or(st.k);
+        let params = Params::new(k, request.lambda.unwrap_or(st.lambda), limits)
+            .map_err(|error| RequestError::Invalid { error, b64: false })?
+            .with_max_per_category(st.max_per_category);
 
         if request.candidates.len() > limits.max_candidates {
             let error = ValidationError::TooManyCandidates {
@@ -232,21 +237,40 @@ impl Engine {
             };
             candidates.push(CandidateInput { id: c.id, score: c.score, category: c.category, embedding });
         }
-        let input = RerankInput::new(candidates, slice.score_transform, algorithm.needs_embeddings(), limits)
+        // A shadow that compares embeddings can only run when the slate has them.
+        let shadow = slice.shadow.filter(|sh| sampled(sh.sample_rate));
+        let input = RerankInput::new(candidates, st.score_transform, algorithm.needs_embeddings(), limits)
             .map_err(|error| {
                 let b64 = error_index(&error).and_then(|i| b64.get(i).copied()).unwrap_or(false);
                 RequestError::Invalid { error, b64 }
             })?;
+        let shadow = shadow.filter(|sh| !sh.algorithm.needs_embeddings() || input.embeddings().is_some());
         Ok(Prepared {
             request_id: request.request_id,
-            slice: slice.clone(),
+            slice: slice.name.clone(),
+            arm: arm.name.clone(),
             algorithm,
             params,
-            k: request.k.unwrap_or(slice.k),
+            k,
             input,
             generation: self.generation,
+            shadow,
         })
     }
+}
+
+/// Whether this request is in the shadow sample: a SplitMix64 stream over a process-wide
+/// counter, so samples spread evenly without a random-number crate or a lock.
+fn sampled(rate: f64) -> bool {
+    static COUNTER: AtomicU64 = AtomicU64::new(0x853c_49e6_748f_ea9b);
+    if rate >= 1.0 {
+        return true;
+    }
+    let mut z = COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed);
+    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    z ^= z >> 31;
+    ((z >> 11) as f64) / ((1u64 << 53) as f64) < rate
 }
 
 /// The candidate index a validation error is about.
@@ -267,8 +291,10 @@ fn error_index(e: &ValidationError) -> Option<usize> {
 pub struct Prepared {
     /// Echoed back.
     pub request_id: Option<String>,
-    /// The slice serving it (a clone of the snapshot's, so the run needs no config).
-    pub slice: Slice,
+    /// Name of the slice serving it.
+    pub slice: Arc<str>,
+    /// Name of the arm serving it.
+    pub arm: Arc<str>,
     /// The diversifier.
     pub algorithm: &'static dyn Diversifier,
     /// k, lambda, caps.
@@ -279,6 +305,8 @@ pub struct Prepared {
     pub input: RerankInput,
     /// Config generation it was validated against.
     pub generation: u64,
+    /// The slice's shadow, when this request is in its sample.
+    pub shadow: Option<Shadow>,
 }
 
 impl Prepared {
@@ -340,7 +368,9 @@ impl Reranked {
             .collect();
         RerankResponse {
             request_id: p.request_id.clone(),
-            slice: p.slice.name.clone(),
+            slice: p.slice.to_string(),
+            arm: p.arm.to_string(),
+            config_generation: p.generation,
             algorithm: p.algorithm.name(),
             lambda: p.params.lambda(),
             k: p.k,

@@ -66,6 +66,8 @@ pub mod measures;
 pub mod metrics;
 pub mod model;
 pub mod pool;
+pub mod reload;
+pub mod shadow;
 pub mod shutdown;
 pub mod wire;
 

@@ -14,6 +14,7 @@ use medley::engine::Engine;
 use medley::http::{serve, AppState};
 use medley::metrics::Metrics;
 use medley::pool::Pool;
+use medley::reload::ConfigSource;
 use medley::shutdown;
 
 fn main() -> ExitCode {
@@ -55,19 +56,13 @@ fn load_config(path: Option<&std::path::Path>) -> anyhow::Result<Config> {
 
 fn run(command: Command) -> anyhow::Result<()> {
     match command {
-        Command::Serve { config, listen, admin_listen } => {
-            let mut config = load_config(config.as_deref())?;
-            if let Some(a) = listen {
-                config.server.listen = a;
-            }
-            if let Some(a) = admin_listen {
-                config.server.admin_listen = a;
-            }
+        Command::Serve { config, listen, admin_listen, overlay } => {
+            let source = ConfigSource { file: config, overlay, listen, admin_listen };
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .enable_all()
                 .build()
                 .context("starting the runtime")?;
-            runtime.block_on(serve_main(config))
+            runtime.block_on(serve_main(source))
         }
         Command::Rerank { input, output, config } => {
             let config = load_config(config.as_deref())?;
@@ -99,18 +94,23 @@ fn run(command: Command) -> anyhow::Result<()> {
     }
 }
 
-async fn serve_main(config: Config) -> anyhow::Result<()> {
-    let (listen, admin_listen) = (config.server.listen, config.server.admin_listen);
-    let public = tokio::net::TcpListener::bind(listen).await.with_context(|| format!("binding {listen}"))?;
-    let admin = tokio::net::TcpListener::bind(admin_listen)
+async fn serve_main(source: ConfigSource) -> anyhow::Result<()> {
+    let token = std::env::var("MEDLEY_ADMIN_TOKEN").ok();
+    let described = source.describe();
+    let state = AppState::start(source, Arc::new(Metrics::new()), token)
+        .with_context(|| format!("starting with {described}"))?;
+    let server = state.engine.load().config().server.clone();
+    let public = tokio::net::TcpListener::bind(server.listen)
         .await
-        .with_context(|| format!("binding {admin_listen}"))?;
-    let state =
-        AppState::new(Engine::new(config, 1), Arc::new(Metrics::new())).context("starting the pool")?;
+        .with_context(|| format!("binding {}", server.listen))?;
+    let admin = tokio::net::TcpListener::bind(server.admin_listen)
+        .await
+        .with_context(|| format!("binding {}", server.admin_listen))?;
     tracing::info!(
         listen = %public.local_addr()?,
         admin_listen = %admin.local_addr()?,
         pool_threads = state.pool.threads(),
+        config = %described,
         "medley serving"
     );
     let (trigger, token) = shutdown::channel();

@@ -49,7 +49,35 @@ pub struct Metrics {
     pub stream_lines: IntCounterVec,
     /// `medley_pool_threads`: kernel pool size.
     pub pool_threads: IntGauge,
+    /// `medley_config_reloads_total{trigger}`: successful swaps, by what asked for them.
+    pub config_reloads: IntCounterVec,
+    /// `medley_config_reload_failures_total{trigger}`: refused configs (the old one kept serving).
+    pub config_reload_failures: IntCounterVec,
+    /// `medley_shadow_runs_total{slice}`.
+    pub shadow_runs: IntCounterVec,
+    /// `medley_shadow_dropped_total{slice}`: shadow jobs dropped because the queue was full.
+    pub shadow_dropped: IntCounterVec,
+    /// `medley_shadow_duration_seconds{slice, algorithm}`.
+    pub shadow_duration: HistogramVec,
+    /// `medley_shadow_overlap{slice}`.
+    pub shadow_overlap: HistogramVec,
+    /// `medley_shadow_rbo{slice}`.
+    pub shadow_rbo: HistogramVec,
+    /// `medley_shadow_entropy_delta{slice}`.
+    pub shadow_entropy_delta: HistogramVec,
+    /// `medley_shadow_ild_delta{slice}`.
+    pub shadow_ild_delta: HistogramVec,
+    /// `medley_shadow_relevance_retained{slice}`.
+    pub shadow_relevance_retained: HistogramVec,
 }
+
+/// Buckets for shares in [0, 1] (overlap, RBO).
+pub const SHARE_BUCKETS: &[f64] = &[0.0, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 1.0];
+/// Buckets for signed differences (entropy in bits, ILD).
+pub const DELTA_BUCKETS: &[f64] =
+    &[-2.0, -1.0, -0.5, -0.25, -0.1, -0.01, 0.0, 0.01, 0.1, 0.25, 0.5, 1.0, 2.0];
+/// Buckets for relevance retained.
+pub const RETAINED_BUCKETS: &[f64] = &[0.5, 0.7, 0.8, 0.9, 0.95, 0.98, 0.99, 1.0, 1.01, 1.05, 1.2];
 
 fn must<T>(r: prometheus::Result<T>) -> T {
     // Metric definitions are constants; a failure is a programming error caught by the tests.
@@ -75,7 +103,7 @@ impl Metrics {
                 "Time to serve one slate, from decoded body to built response.",
             )
             .buckets(DURATION_BUCKETS.to_vec()),
-            &["slice", "algorithm"],
+            &["slice", "arm", "algorithm"],
         ));
         let entropy = must(HistogramVec::new(
             HistogramOpts::new(
@@ -83,18 +111,18 @@ impl Metrics {
                 "Shannon entropy (base 2) of the categories of each served slate.",
             )
             .buckets(ENTROPY_BUCKETS.to_vec()),
-            &["slice", "algorithm"],
+            &["slice", "arm", "algorithm"],
         ));
         let last_entropy = must(GaugeVec::new(
             Opts::new(
                 "medley_last_category_entropy",
                 "Shannon entropy (base 2) of the categories of the latest served slate.",
             ),
-            &["slice", "algorithm"],
+            &["slice", "arm", "algorithm"],
         ));
         let last_ild = must(GaugeVec::new(
             Opts::new("medley_last_intra_list_distance", "Intra-list distance (mean pairwise cosine distance) of the latest served slate that had embeddings."),
-            &["slice", "algorithm"],
+            &["slice", "arm", "algorithm"],
         ));
         let candidates = must(HistogramVec::new(
             HistogramOpts::new("medley_candidates_per_request", "Candidates sent per re-rank request.")
@@ -117,6 +145,60 @@ impl Metrics {
             &["outcome"],
         ));
         let pool_threads = must(IntGauge::new("medley_pool_threads", "Threads in the kernel pool."));
+        let counter =
+            |name: &str, help: &str, label: &str| must(IntCounterVec::new(Opts::new(name, help), &[label]));
+        let config_reloads =
+            counter("medley_config_reloads_total", "Configurations swapped in, by trigger.", "trigger");
+        let config_reload_failures = counter(
+            "medley_config_reload_failures_total",
+            "Configurations refused (the previous one kept serving), by trigger.",
+            "trigger",
+        );
+        let shadow_runs = counter("medley_shadow_runs_total", "Shadow runs completed.", "slice");
+        let shadow_dropped = counter(
+            "medley_shadow_dropped_total",
+            "Shadow runs dropped because the shadow queue was full.",
+            "slice",
+        );
+        let hist = |name: &str, help: &str, buckets: &[f64], labels: &[&str]| {
+            must(HistogramVec::new(HistogramOpts::new(name, help).buckets(buckets.to_vec()), labels))
+        };
+        let shadow_duration = hist(
+            "medley_shadow_duration_seconds",
+            "Time of one shadow run, off the request path.",
+            DURATION_BUCKETS,
+            &["slice", "algorithm"],
+        );
+        let shadow_overlap = hist(
+            "medley_shadow_overlap",
+            "Share of items the shadow and primary slates share.",
+            SHARE_BUCKETS,
+            &["slice"],
+        );
+        let shadow_rbo = hist(
+            "medley_shadow_rbo",
+            "Rank-biased overlap (p = 0.9, extrapolated) of shadow and primary slates.",
+            SHARE_BUCKETS,
+            &["slice"],
+        );
+        let shadow_entropy_delta = hist(
+            "medley_shadow_entropy_delta",
+            "Category entropy (base 2) of the shadow slate minus the primary's.",
+            DELTA_BUCKETS,
+            &["slice"],
+        );
+        let shadow_ild_delta = hist(
+            "medley_shadow_ild_delta",
+            "Intra-list distance of the shadow slate minus the primary's.",
+            DELTA_BUCKETS,
+            &["slice"],
+        );
+        let shadow_relevance_retained = hist(
+            "medley_shadow_relevance_retained",
+            "Sum of normalised scores of the shadow slate over the primary's.",
+            RETAINED_BUCKETS,
+            &["slice"],
+        );
         reg(Box::new(requests.clone()));
         reg(Box::new(rerank_duration.clone()));
         reg(Box::new(entropy.clone()));
@@ -129,6 +211,16 @@ impl Metrics {
         reg(Box::new(config_generation.clone()));
         reg(Box::new(stream_lines.clone()));
         reg(Box::new(pool_threads.clone()));
+        reg(Box::new(config_reloads.clone()));
+        reg(Box::new(config_reload_failures.clone()));
+        reg(Box::new(shadow_runs.clone()));
+        reg(Box::new(shadow_dropped.clone()));
+        reg(Box::new(shadow_duration.clone()));
+        reg(Box::new(shadow_overlap.clone()));
+        reg(Box::new(shadow_rbo.clone()));
+        reg(Box::new(shadow_entropy_delta.clone()));
+        reg(Box::new(shadow_ild_delta.clone()));
+        reg(Box::new(shadow_relevance_retained.clone()));
         Self {
             registry,
             requests,
@@ -143,20 +235,47 @@ impl Metrics {
             config_generation,
             stream_lines,
             pool_threads,
+            config_reloads,
+            config_reload_failures,
+            shadow_runs,
+            shadow_dropped,
+            shadow_duration,
+            shadow_overlap,
+            shadow_rbo,
+            shadow_entropy_delta,
+            shadow_ild_delta,
+            shadow_relevance_retained,
+        }
+    }
+
+    /// Records one shadow comparison.
+    pub fn observe_shadow(&self, slice: &str, algorithm: &str, seconds: f64, c: &crate::shadow::Comparison) {
+        self.shadow_runs.with_label_values(&[slice]).inc();
+        self.shadow_duration.with_label_values(&[slice, algorithm]).observe(seconds);
+        self.shadow_overlap.with_label_values(&[slice]).observe(c.overlap);
+        self.shadow_rbo.with_label_values(&[slice]).observe(c.rbo);
+        self.shadow_entropy_delta.with_label_values(&[slice]).observe(c.entropy_delta);
+        if let Some(d) = c.ild_delta {
+            self.shadow_ild_delta.with_label_values(&[slice]).observe(d);
+        }
+        if let Some(r) = c.relevance_retained {
+            self.shadow_relevance_retained.with_label_values(&[slice]).observe(r);
         }
     }
 
     /// Records one served slate.
+    #[allow(clippy::too_many_arguments)]
     pub fn observe_slate(
         &self,
         slice: &str,
+        arm: &str,
         algorithm: &str,
         seconds: f64,
         n: usize,
         entropy: f64,
         ild: Option<f64>,
     ) {
-        let labels = [slice, algorithm];
+        let labels = [slice, arm, algorithm];
         self.rerank_duration.with_label_values(&labels).observe(seconds);
         self.entropy.with_label_values(&labels).observe(entropy);
         self.last_entropy.with_label_values(&labels).set(entropy);
@@ -190,14 +309,14 @@ mod tests {
     fn renders_every_family_after_one_slate() {
         let m = Metrics::new();
         m.requests.with_label_values(&["200"]).inc();
-        m.observe_slate("default", "dpp", 0.0004, 500, 1.5, Some(0.4));
+        m.observe_slate("default", "default", "dpp", 0.0004, 500, 1.5, Some(0.4));
         let text = String::from_utf8(m.render()).unwrap();
         for name in [
             "medley_requests_total{status=\"200\"} 1",
-            "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",slice=\"default\",le=\"0.0005\"} 1",
-            "medley_category_entropy_sum{algorithm=\"dpp\",slice=\"default\"} 1.5",
-            "medley_last_category_entropy{algorithm=\"dpp\",slice=\"default\"} 1.5",
-            "medley_last_intra_list_distance{algorithm=\"dpp\",slice=\"default\"} 0.4",
+            "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",arm=\"default\",slice=\"default\",le=\"0.0005\"} 1",
+            "medley_category_entropy_sum{algorithm=\"dpp\",arm=\"default\",slice=\"default\"} 1.5",
+            "medley_last_category_entropy{algorithm=\"dpp\",arm=\"default\",slice=\"default\"} 1.5",
+            "medley_last_intra_list_distance{algorithm=\"dpp\",arm=\"default\",slice=\"default\"} 0.4",
             "medley_candidates_per_request_count{slice=\"default\"} 1",
             "medley_panics_total 0",
         ] {

@@ -30,6 +30,9 @@ pub struct RerankRequest {
     /// Diversity weight; absent means the slice's.
     #[serde(default)]
     pub lambda: Option<f64>,
+    /// A user or session id; the same unit always lands in the same arm of a slice.
+    #[serde(default)]
+    pub unit_id: Option<String>,
     /// The scored candidates.
     pub candidates: Vec<WireCandidate>,
 }
@@ -60,6 +63,10 @@ pub struct RerankResponse {
     pub request_id: Option<String>,
     /// Slice that served the request.
     pub slice: String,
+    /// Arm of the slice that served it (`"default"` for a slice without arms).
+    pub arm: String,
+    /// Generation of the config that served it.
+    pub config_generation: u64,
     /// Diversifier used.
     pub algorithm: &'static str,
     /// Lambda used.
@@ -151,11 +158,19 @@ impl ErrorBody {
 /// [`RequestError::MalformedJson`] for text that is not JSON, [`RequestError::InvalidField`]
 /// (with the field's path) for JSON of the wrong shape.
 pub fn decode_request(bytes: &[u8]) -> Result<RerankRequest, RequestError> {
+    decode_json(bytes)
+}
+
+/// Decodes any JSON body the same way (used for admin bodies too).
+///
+/// # Errors
+/// As [`decode_request`].
+pub fn decode_json<T: serde::de::DeserializeOwned>(bytes: &[u8]) -> Result<T, RequestError> {
     match serde_json::from_slice(bytes) {
         Ok(r) => Ok(r),
         Err(_) => {
             let de = &mut serde_json::Deserializer::from_slice(bytes);
-            let err = match serde_path_to_error::deserialize::<_, RerankRequest>(de) {
+            let err = match serde_path_to_error::deserialize::<_, T>(de) {
                 // Unreachable in practice: both paths decode the same type.
                 Ok(r) => return Ok(r),
                 Err(e) => e,

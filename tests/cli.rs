@@ -26,8 +26,10 @@ fn check_config_accepts_the_samples_and_refuses_bad_files_naming_the_field() {
     let out = Command::new(BIN).args(["check-config", example]).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let text = String::from_utf8(out.stdout).unwrap();
-    assert!(text.contains("slice search: algorithm=quota lambda=0.8 k=10"), "{text}");
-    assert!(text.contains("locked=true"), "{text}");
+    assert!(text.contains("slice search: locked=true"), "{text}");
+    assert!(text.contains("arm default (100.0 %): algorithm=quota lambda=0.8 k=10"), "{text}");
+    assert!(text.contains("arm treatment-b (10.0 %): algorithm=dpp lambda=0.5 k=20"), "{text}");
+    assert!(text.contains("shadow: algorithm=mmr lambda=0.5 sample_rate=0.1"), "{text}");
 
     let dir = tempdir("check");
     let bad = dir.join("bad.toml");
@@ -144,4 +146,213 @@ fn serve_drains_and_exits_zero_on_sigterm() {
         std::thread::sleep(Duration::from_millis(20));
     };
     assert_eq!(exit.code(), Some(0));
+}
+
+/// Kills a spawned server if its test fails before stopping it.
+struct KillOnDrop(u32);
+
+impl Drop for KillOnDrop {
+    fn drop(&mut self) {
+        if std::thread::panicking() {
+            let _ = Command::new("kill").args(["-KILL", &self.0.to_string()]).status();
+        }
+    }
+}
+
+/// Starts `medley serve` on ephemeral ports with `args`; returns the child and both addresses.
+fn spawn_server(args: &[&str], envs: &[(&str, &str)]) -> (std::process::Child, String, String) {
+    let mut cmd = Command::new(BIN);
+    cmd.args(["serve", "--listen", "127.0.0.1:0", "--admin-listen", "127.0.0.1:0"])
+        .args(args)
+        .stderr(Stdio::piped());
+    for (k, v) in envs {
+        cmd.env(k, v);
+    }
+    let mut child = cmd.spawn().unwrap();
+    let mut stderr = BufReader::new(child.stderr.take().unwrap());
+    let mut line = String::new();
+    let (public, admin) = loop {
+        line.clear();
+        assert!(stderr.read_line(&mut line).unwrap() > 0, "server exited early");
+        if let (Some(p), Some(a)) = (line.split(" listen=").nth(1), line.split(" admin_listen=").nth(1)) {
+            let word = |s: &str| s.split_whitespace().next().unwrap().to_owned();
+            break (word(p), word(a));
+        }
+    };
+    // Keep draining stderr so the server never blocks on a full pipe.
+    std::thread::spawn(move || for _ in stderr.lines() {});
+    // The server sets up its file watcher before it answers anything: once /healthz answers,
+    // config writes are seen.
+    let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    let status =
+        runtime.block_on(async { reqwest::get(format!("http://{public}/healthz")).await.unwrap().status() });
+    assert_eq!(status, 200);
+    (child, public, admin)
+}
+
+fn swap_config(lambda: f64) -> String {
+    format!("[slices.default]\nalgorithm = \"mmr\"\nlambda = {lambda}\nk = 5\n\n[slices.home]\nalgorithm = \"dpp\"\n")
+}
+
+/// Hot swap under load: two clients drive the server without pause while the config is swapped
+/// 120 times, a third each through file writes (half in place, half by rename, as editors do),
+/// SIGHUP and the admin API. Every request must succeed, and every response's settings must be
+/// the ones of the generation it reports. Bounded: 120 swaps, each waited for at most 5 s.
+#[test]
+fn hot_swap_under_load_through_file_sighup_and_admin() {
+    let dir = tempdir("swap");
+    let config = dir.join("medley.toml");
+    std::fs::write(&config, swap_config(0.0)).unwrap();
+    let token = "swap-test-token";
+    let (mut child, public, admin) =
+        spawn_server(&["--config", config.to_str().unwrap()], &[("MEDLEY_ADMIN_TOKEN", token)]);
+    let _guard = KillOnDrop(child.id());
+    let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap();
+    let (observed, failures, swaps) = runtime.block_on(async {
+        let client = reqwest::Client::new();
+        let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let mut rng = Rng(99);
+        let body = request(&mut rng, 30, 4, 3);
+        let mut load = Vec::new();
+        for _ in 0..2 {
+            let (client, url, body, stop) =
+                (client.clone(), format!("http://{public}/v1/rerank"), body.clone(), stop.clone());
+            load.push(tokio::spawn(async move {
+                let (mut seen, mut failed) = (Vec::new(), 0_u32);
+                while !stop.load(std::sync::atomic::Ordering::Relaxed) && seen.len() < 20_000 {
+                    match client.post(&url).json(&body).send().await {
+                        Ok(r) if r.status() == 200 => {
+                            let v: Value = r.json().await.unwrap();
+                            seen.push((
+                                v["config_generation"].as_u64().unwrap(),
+                                v["lambda"].as_f64().unwrap(),
+                            ));
+                        }
+                        _ => failed += 1,
+                    }
+                }
+                (seen, failed)
+            }));
+        }
+        let generation = |client: reqwest::Client, admin: String| async move {
+            let v: Value = client
+                .get(format!("http://{admin}/admin/config"))
+                .bearer_auth(token)
+                .send()
+                .await
+                .unwrap()
+                .json()
+                .await
+                .unwrap();
+            v["config_generation"].as_u64().unwrap()
+        };
+        let mut current = generation(client.clone(), admin.clone()).await;
+        let mut swaps = 0;
+        for i in 1..=120_u32 {
+            let lambda = f64::from(i) / 1000.0;
+            match i % 3 {
+                0 => {
+                    if i % 2 == 0 {
+                        std::fs::write(&config, swap_config(lambda)).unwrap();
+                    } else {
+                        let tmp = dir.join("medley.toml.new");
+                        std::fs::write(&tmp, swap_config(lambda)).unwrap();
+                        std::fs::rename(&tmp, &config).unwrap();
+                    }
+                }
+                1 => {
+                    let ok = Command::new("kill").args(["-HUP", &child.id().to_string()]).status().unwrap();
+                    assert!(ok.success());
+                }
+                _ => {
+                    let r = client
+                        .put(format!("http://{admin}/admin/slices/home"))
+                        .bearer_auth(token)
+                        .json(&json!({"algorithm": "dpp", "lambda": lambda}))
+                        .send()
+                        .await
+                        .unwrap();
+                    assert_eq!(r.status(), 200);
+                }
+            }
+            let deadline = Instant::now() + Duration::from_secs(5);
+            loop {
+                let g = generation(client.clone(), admin.clone()).await;
+                if g > current {
+                    current = g;
+                    swaps += 1;
+                    break;
+                }
+                assert!(Instant::now() < deadline, "swap {i} (path {}) never landed", i % 3);
+                tokio::time::sleep(Duration::from_millis(5)).await;
+            }
+        }
+        stop.store(true, std::sync::atomic::Ordering::Relaxed);
+        let (mut observed, mut failures) = (Vec::new(), 0);
+        for h in load {
+            let (seen, failed) = h.await.unwrap();
+            observed.extend(seen);
+            failures += failed;
+        }
+        (observed, failures, swaps)
+    });
+    assert_eq!(failures, 0, "no request may fail during swaps");
+    assert!(swaps >= 120, "{swaps} swaps");
+    assert!(observed.len() > 200, "load kept running: {} responses", observed.len());
+    // One generation, one setting; and settings only move forward with generations.
+    let mut by_generation = std::collections::BTreeMap::new();
+    for (g, lambda) in &observed {
+        let first = *by_generation.entry(*g).or_insert(*lambda);
+        assert_eq!(first.to_bits(), lambda.to_bits(), "generation {g} served two settings");
+    }
+    let lambdas: Vec<f64> = by_generation.values().copied().collect();
+    assert!(lambdas.windows(2).all(|w| w[0] <= w[1]), "settings went backwards: {lambdas:?}");
+    assert!(by_generation.len() > 10, "responses saw {} generations", by_generation.len());
+    let kill = Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
+    assert!(kill.success());
+    assert_eq!(child.wait().unwrap().code(), Some(0));
+}
+
+/// A bad file is refused on SIGHUP too, and the old config keeps serving.
+#[test]
+fn sighup_with_an_invalid_file_keeps_the_old_config() {
+    let dir = tempdir("hup-bad");
+    let config = dir.join("medley.toml");
+    std::fs::write(&config, swap_config(0.25)).unwrap();
+    let (mut child, public, admin) = spawn_server(&["--config", config.to_str().unwrap()], &[]);
+    let _guard = KillOnDrop(child.id());
+    // Write the bad file, wait out the watcher's refusal, then SIGHUP the same bad file.
+    std::fs::write(&config, "[slices.default]\nlambda = \"high\"\n").unwrap();
+    let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    let failures = |trigger: &'static str| {
+        let admin = admin.clone();
+        runtime.block_on(async move {
+            let text = reqwest::get(format!("http://{admin}/metrics")).await.unwrap().text().await.unwrap();
+            let needle = format!("medley_config_reload_failures_total{{trigger=\"{trigger}\"}} ");
+            text.lines().find_map(|l| l.strip_prefix(&needle)).map_or(0, |v| v.parse::<u64>().unwrap())
+        })
+    };
+    let deadline = Instant::now() + Duration::from_secs(10);
+    while failures("file") == 0 {
+        assert!(Instant::now() < deadline, "the watcher never refused the bad file");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    assert!(Command::new("kill").args(["-HUP", &child.id().to_string()]).status().unwrap().success());
+    while failures("sighup") == 0 {
+        assert!(Instant::now() < deadline, "SIGHUP never refused the bad file");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let lambda = runtime.block_on(async {
+        let r = reqwest::Client::new()
+            .post(format!("http://{public}/v1/rerank"))
+            .json(&json!({"candidates": []}))
+            .send()
+            .await
+            .unwrap();
+        let v: Value = r.json().await.unwrap();
+        (v["lambda"].as_f64(), v["config_generation"].as_u64())
+    });
+    assert_eq!(lambda, (Some(0.25), Some(1)));
+    assert!(Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap().success());
+    assert_eq!(child.wait().unwrap().code(), Some(0));
 }

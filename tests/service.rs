@@ -546,12 +546,13 @@ async fn metrics_name_every_family_after_traffic() {
     let text = client.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap();
     for needle in [
         "# TYPE medley_rerank_duration_seconds histogram",
-        "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",slice=\"default\",le=\"0.00005\"}",
-        "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",slice=\"default\",le=\"1\"} 1",
+        "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",arm=\"default\",slice=\"default\",le=\"0.00005\"}",
+        "medley_rerank_duration_seconds_bucket{algorithm=\"dpp\",arm=\"default\",slice=\"default\",le=\"1\"} 1",
         "# TYPE medley_category_entropy histogram",
-        "medley_last_category_entropy{algorithm=\"dpp\",slice=\"default\"}",
-        "medley_last_intra_list_distance{algorithm=\"dpp\",slice=\"default\"}",
-        "medley_requests_total{status=\"200\"} 1",
+        "medley_last_category_entropy{algorithm=\"dpp\",arm=\"default\",slice=\"default\"}",
+        "medley_last_intra_list_distance{algorithm=\"dpp\",arm=\"default\",slice=\"default\"}",
+        // The start-up /healthz probe and the one re-rank.
+        "medley_requests_total{status=\"200\"} 2",
         "medley_requests_total{status=\"422\"} 1",
         "medley_candidates_per_request_count{slice=\"default\"} 1",
         "medley_panics_total 0",

@@ -71,6 +71,21 @@ pub enum ApiError {
     /// A panic was caught (500).
     #[error("panic: {0}")]
     Panicked(String),
+    /// No admin token is configured (403).
+    #[error("the admin endpoints are disabled: start medley with MEDLEY_ADMIN_TOKEN set, then send Authorization: Bearer <token>")]
+    AdminDisabled,
+    /// Missing or wrong bearer token (401).
+    #[error("missing or wrong admin token: send Authorization: Bearer <the value of MEDLEY_ADMIN_TOKEN>")]
+    Unauthorized,
+    /// A config change that does not validate (422); the old config keeps serving.
+    #[error("config refused, the previous one keeps serving: {0}")]
+    InvalidConfig(#[from] crate::config::ConfigError),
+    /// `DELETE` of a slice that only the file defines (404).
+    #[error("{0}")]
+    NotRuntimeSlice(String),
+    /// The overlay file could not be written (500); nothing changed.
+    #[error("{0}")]
+    PersistFailed(String),
 }
 
 /// Detail of a 5xx, for the logging middleware; never sent to the client.
@@ -93,7 +108,11 @@ impl ApiError {
             Self::Overloaded { .. } | Self::DeadlineExceeded { .. } | Self::ShuttingDown => {
                 StatusCode::SERVICE_UNAVAILABLE
             }
-            Self::Panicked(_) => StatusCode::INTERNAL_SERVER_ERROR,
+            Self::Panicked(_) | Self::PersistFailed(_) => StatusCode::INTERNAL_SERVER_ERROR,
+            Self::AdminDisabled => StatusCode::FORBIDDEN,
+            Self::Unauthorized => StatusCode::UNAUTHORIZED,
+            Self::InvalidConfig(_) => StatusCode::UNPROCESSABLE_ENTITY,
+            Self::NotRuntimeSlice(_) => StatusCode::NOT_FOUND,
         }
     }
 
@@ -110,7 +129,11 @@ impl ApiError {
             Self::Overloaded { .. } => "overloaded",
             Self::DeadlineExceeded { .. } => "deadline_exceeded",
             Self::ShuttingDown => "shutting_down",
-            Self::Panicked(_) => "internal",
+            Self::Panicked(_) | Self::PersistFailed(_) => "internal",
+            Self::AdminDisabled => "admin_disabled",
+            Self::Unauthorized => "unauthorized",
+            Self::InvalidConfig(_) => "invalid_config",
+            Self::NotRuntimeSlice(_) => "not_a_runtime_slice",
         }
     }
 
@@ -119,11 +142,14 @@ impl ApiError {
     pub fn body(&self) -> ErrorBody {
         match self {
             Self::Request(e) if !e.is_internal() => ErrorBody::from_request_error(e),
-            Self::Request(_) | Self::Panicked(_) => ErrorBody::new(
+            Self::Request(_) | Self::Panicked(_) | Self::PersistFailed(_) => ErrorBody::new(
                 "internal",
                 "internal error; the service logged the detail and keeps serving, so the request may be retried",
                 None,
             ),
+            Self::InvalidConfig(crate::config::ConfigError::Invalid { field, .. }) => {
+                ErrorBody::new(self.code(), self.to_string(), Some(field.clone()))
+            }
             other => ErrorBody::new(other.code(), other.to_string(), None),
         }
     }
@@ -143,6 +169,9 @@ impl IntoResponse for ApiError {
             .into_response();
         if status == StatusCode::SERVICE_UNAVAILABLE {
             response.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static(RETRY_AFTER_SECONDS));
+        }
+        if status == StatusCode::UNAUTHORIZED {
+            response.headers_mut().insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
         }
         if status.is_server_error() && status != StatusCode::SERVICE_UNAVAILABLE {
             response.extensions_mut().insert(InternalDetail(self.to_string()));

@@ -19,6 +19,7 @@ use futures_util::{stream, StreamExt};
 
 use super::{Admitted, ApiError, AppState};
 use crate::engine::Engine;
+use crate::shadow::ShadowRunner;
 use crate::wire::decode_request;
 
 /// Bodies shorter than this are decoded inline on the async worker (about 100 candidates with
@@ -32,6 +33,7 @@ pub const OPENAPI_JSON: &str = include_str!("../../docs/openapi.json");
 struct Served {
     body: Vec<u8>,
     slice: String,
+    arm: String,
     algorithm: &'static str,
     n: usize,
     k: usize,
@@ -40,36 +42,51 @@ struct Served {
     request_id: Option<String>,
 }
 
-fn serve_prepared(prepared: crate::engine::Prepared, ws: &mut crate::Workspace) -> Result<Served, ApiError> {
+fn serve_prepared(
+    prepared: crate::engine::Prepared,
+    ws: &mut crate::Workspace,
+    shadow: &ShadowRunner,
+) -> Result<Served, ApiError> {
     let reranked = prepared.run(ws)?;
     let response = reranked.to_response();
     let body = serde_json::to_vec(&response)
         .map_err(|e| ApiError::Panicked(format!("encoding the response: {e}")))?;
-    Ok(Served {
+    let served = Served {
         body,
         slice: response.slice,
+        arm: response.arm,
         algorithm: response.algorithm,
         n: reranked.prepared.input.len(),
         k: reranked.selection.indices.len(),
         entropy: response.diversity.category_entropy_bits,
         ild: response.diversity.intra_list_distance,
         request_id: response.request_id,
-    })
+    };
+    // The answer is built; the shadow gets the validated slate and the primary picks by move.
+    if let Some(sh) = reranked.prepared.shadow {
+        shadow.submit(reranked, sh);
+    }
+    Ok(served)
 }
 
 /// Decodes, validates and serves one request body against `engine`, within its deadline.
 async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Result<Served, ApiError> {
     let started = Instant::now();
     let deadline = engine.config().server.request_timeout;
+    let shadow = state.shadow.clone();
     let work = async {
         if bytes.len() >= INLINE_BODY_BELOW {
             state
                 .pool
-                .run(u64::MAX, move |ws| serve_prepared(engine.prepare(decode_request(&bytes)?)?, ws))
+                .run(u64::MAX, move |ws| {
+                    serve_prepared(engine.prepare(decode_request(&bytes)?)?, ws, &shadow)
+                })
                 .await
         } else {
             match decode_request(&bytes).and_then(|r| engine.prepare(r)) {
-                Ok(prepared) => state.pool.run(prepared.work(), move |ws| serve_prepared(prepared, ws)).await,
+                Ok(prepared) => {
+                    state.pool.run(prepared.work(), move |ws| serve_prepared(prepared, ws, &shadow)).await
+                }
                 Err(e) => Ok(Err(e.into())),
             }
         }
@@ -84,6 +101,7 @@ async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Resul
     };
     state.metrics.observe_slate(
         &served.slice,
+        &served.arm,
         served.algorithm,
         started.elapsed().as_secs_f64(),
         served.n,

@@ -6,6 +6,7 @@
 //! on `/v1/*` only, `admit` (the concurrency limit: a permit or an immediate 503 with
 //! `Retry-After`). Health, readiness and metrics are never shed.
 
+mod admin;
 mod error;
 mod handlers;
 
@@ -25,10 +26,27 @@ use tower_http::catch_panic::CatchPanicLayer;
 pub use error::{ApiError, InternalDetail, RETRY_AFTER_SECONDS};
 pub use handlers::{INLINE_BODY_BELOW, OPENAPI_JSON};
 
+use crate::config::ConfigError;
 use crate::engine::Engine;
 use crate::metrics::Metrics;
 use crate::pool::{panic_message, Pool};
+use crate::reload::{ConfigSource, Reloader};
+use crate::shadow::ShadowRunner;
 use crate::shutdown::Shutdown;
+
+/// Why the service could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum StartError {
+    /// The config (or the overlay) is invalid.
+    #[error("invalid config: {0}")]
+    Config(#[from] ConfigError),
+    /// The kernel pool could not start its threads.
+    #[error("starting the kernel pool: {0}")]
+    Pool(#[from] rayon::ThreadPoolBuildError),
+    /// The shadow worker could not start.
+    #[error("starting the shadow worker: {0}")]
+    Thread(#[from] std::io::Error),
+}
 
 /// Everything a handler needs; cheap to clone.
 #[derive(Debug, Clone)]
@@ -40,6 +58,12 @@ pub struct AppState {
     pub pool: Arc<Pool>,
     /// Metric handles.
     pub metrics: Arc<Metrics>,
+    /// The shadow queue and worker.
+    pub shadow: Arc<ShadowRunner>,
+    /// Reloads and runtime slice changes.
+    pub reloader: Arc<Reloader>,
+    /// `MEDLEY_ADMIN_TOKEN`; `None` disables the admin endpoints (403).
+    admin_token: Option<Arc<str>>,
     /// Concurrency permits (`server.max_in_flight`, fixed at start). A semaphore rather than a
     /// counter so a stream's permit can live inside its response body until the last line.
     permits: Arc<Semaphore>,
@@ -49,20 +73,34 @@ pub struct AppState {
 }
 
 impl AppState {
-    /// State for `engine`, with a pool and permits sized from its `[server]` settings.
+    /// Loads the config from `source` (with its persisted runtime slices) as generation 1 and
+    /// starts the pool and the shadow worker, sized from its `[server]` settings.
     ///
     /// # Errors
-    /// When the pool's threads cannot be started.
-    pub fn new(engine: Engine, metrics: Arc<Metrics>) -> Result<Self, rayon::ThreadPoolBuildError> {
-        let server = &engine.config().server;
+    /// A [`StartError`] naming what failed.
+    pub fn start(
+        source: ConfigSource,
+        metrics: Arc<Metrics>,
+        admin_token: Option<String>,
+    ) -> Result<Self, StartError> {
+        let runtime = source.read_overlay()?;
+        let file = source.read_file()?;
+        let config = source.build(file.clone(), &runtime)?;
+        let server = &config.server;
         let pool = Pool::new(server.pool_threads, server.inline_work_below)?;
+        let shadow = ShadowRunner::start(server.shadow_queue, metrics.clone())?;
         let max_in_flight = server.max_in_flight;
+        let engine = Arc::new(ArcSwap::from_pointee(Engine::new(config, 1)));
         metrics.pool_threads.set(pool.threads() as i64);
-        metrics.config_generation.set(i64::try_from(engine.generation()).unwrap_or(i64::MAX));
+        metrics.config_generation.set(1);
+        let reloader = Arc::new(Reloader::new(source, engine.clone(), metrics.clone(), file, runtime));
         Ok(Self {
-            engine: Arc::new(ArcSwap::from_pointee(engine)),
+            engine,
             pool: Arc::new(pool),
             metrics,
+            shadow: Arc::new(shadow),
+            reloader,
+            admin_token: admin_token.filter(|t| !t.is_empty()).map(Into::into),
             permits: Arc::new(Semaphore::new(max_in_flight)),
             max_in_flight,
             draining: Arc::new(AtomicBool::new(false)),
@@ -104,9 +142,10 @@ pub fn app(state: AppState) -> Router {
         .with_state(state)
 }
 
-/// The private router: health and metrics (the admin endpoints join it with traffic slices).
+/// The private router: health, metrics and the token-protected `/admin/*` endpoints.
 pub fn admin_app(state: AppState) -> Router {
     Router::new()
+        .merge(admin::routes(state.clone()))
         .merge(common_routes())
         .fallback(handlers::not_found)
         .method_not_allowed_fallback(handlers::method_not_allowed)
@@ -175,8 +214,23 @@ pub async fn serve(
         mark.started().await;
         draining.store(true, Ordering::Relaxed);
     });
+    let watcher = match crate::reload::watch(state.reloader.clone(), shutdown.clone()) {
+        Ok(w) => w,
+        Err(e) => {
+            tracing::warn!(error = %e, "cannot watch the config file; reload with SIGHUP or POST /admin/reload");
+            None
+        }
+    };
+    let sighup = tokio::spawn(crate::reload::on_sighup(state.reloader.clone(), shutdown.clone()));
+    let shadow = state.shadow.clone();
     let public = axum::serve(public, app(state.clone())).with_graceful_shutdown(shutdown.clone().started());
     let admin = axum::serve(admin, admin_app(state)).with_graceful_shutdown(shutdown.started());
     let (a, b) = tokio::join!(async { public.await }, async { admin.await });
+    // Background work holds the shutdown token; wait for it, then drain the shadow queue.
+    if let Some(w) = watcher {
+        let _ = w.await;
+    }
+    let _ = sighup.await;
+    let _ = tokio::task::spawn_blocking(move || shadow.stop()).await;
     a.and(b)
 }

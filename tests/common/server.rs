@@ -4,10 +4,9 @@
 use std::net::SocketAddr;
 use std::sync::Arc;
 
-use medley::config::Config;
-use medley::engine::Engine;
 use medley::http::{serve, AppState};
 use medley::metrics::Metrics;
+use medley::reload::ConfigSource;
 use medley::shutdown::{self, Trigger};
 use serde_json::{json, Value};
 
@@ -18,24 +17,51 @@ pub struct Server {
     pub base: String,
     pub admin: String,
     pub addr: SocketAddr,
+    /// The config file the server reads (and watches).
+    pub config_path: std::path::PathBuf,
+    pub state: AppState,
     trigger: Option<Trigger>,
     task: Option<tokio::task::JoinHandle<std::io::Result<()>>>,
 }
 
 impl Server {
-    /// Serves `config_toml` (listeners replaced by 127.0.0.1:0).
+    /// Serves `config_toml` from a fresh temporary file, without an admin token.
     pub async fn start(config_toml: &str) -> Self {
-        let config = Config::from_toml(config_toml).expect("test config is valid");
+        Self::start_with(config_toml, None, false).await
+    }
+
+    /// Serves `config_toml` from a fresh temporary file, with an optional admin token and an
+    /// optional overlay file beside it.
+    pub async fn start_with(config_toml: &str, admin_token: Option<&str>, overlay: bool) -> Self {
+        static NEXT: std::sync::atomic::AtomicU32 = std::sync::atomic::AtomicU32::new(0);
+        let n = NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let dir = std::env::temp_dir().join(format!("medley-test-{}-{n}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).unwrap();
+        let config_path = dir.join("medley.toml");
+        std::fs::write(&config_path, config_toml).unwrap();
+        let source = ConfigSource {
+            file: Some(config_path.clone()),
+            overlay: overlay.then(|| dir.join("overlay.toml")),
+            ..ConfigSource::default()
+        };
         let public = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let admin = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let (addr, admin_addr) = (public.local_addr().unwrap(), admin.local_addr().unwrap());
-        let state = AppState::new(Engine::new(config, 1), Arc::new(Metrics::new())).unwrap();
+        let state = AppState::start(source, Arc::new(Metrics::new()), admin_token.map(str::to_owned))
+            .expect("test config is valid");
         let (trigger, token) = shutdown::channel();
-        let task = tokio::spawn(serve(public, admin, state, token));
+        let task = tokio::spawn(serve(public, admin, state.clone(), token));
+        // serve() sets up the file watcher before it answers anything: one answered request
+        // means a config write from now on is seen.
+        let health = reqwest::get(format!("http://{addr}/healthz")).await.expect("server answers");
+        assert_eq!(health.status(), 200);
         Self {
             base: format!("http://{addr}"),
             admin: format!("http://{admin_addr}"),
             addr,
+            config_path,
+            state,
             trigger: Some(trigger),
             task: Some(task),
         }

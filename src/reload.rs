@@ -1,0 +1,419 @@
+//! Live configuration: where the config comes from, how it is swapped, and what survives a
+//! restart.
+//!
+//! The live [`Engine`] sits behind an `ArcSwap`. A reload (file change, SIGHUP, `POST
+//! /admin/reload`) or a runtime slice change (`PUT`/`DELETE /admin/slices/{name}`) parses and
+//! validates a complete new config on the side, with the same code as `medley check-config`, and
+//! only then stores it with the next generation number. A config that fails validation is refused
+//! with the message naming the field, counted in `medley_config_reload_failures_total`, and the
+//! old engine keeps serving. Requests already running keep the snapshot they loaded.
+//!
+//! Runtime slices (set through the admin API) are layered over the file's slices of the same
+//! name, on every reload, until deleted. With `--overlay FILE` they are also written to that file
+//! atomically (a temporary file in the same directory, synced, then renamed over it) and read back
+//! at start, so they survive a restart; without it they live until the process exits, and the
+//! admin API says so in every answer.
+//!
+//! Settings fixed at start: the listeners, `pool_threads` and `max_in_flight` (a reload that
+//! changes them is served with the new values everywhere else, and a warning is logged).
+
+use std::collections::BTreeMap;
+use std::io::Write as _;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use arc_swap::ArcSwap;
+
+use crate::config::{Config, ConfigError, RawConfig, RawSlice, DEFAULT_TOML};
+use crate::engine::Engine;
+use crate::metrics::Metrics;
+use crate::shutdown::Shutdown;
+
+/// What asked for a swap; the label of the reload counters.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Trigger {
+    /// The config file changed on disk.
+    File,
+    /// SIGHUP.
+    Signal,
+    /// `POST /admin/reload`.
+    Admin,
+    /// `PUT` or `DELETE /admin/slices/{name}`.
+    Slice,
+}
+
+impl Trigger {
+    /// Metric label.
+    #[must_use]
+    pub fn label(self) -> &'static str {
+        match self {
+            Self::File => "file",
+            Self::Signal => "sighup",
+            Self::Admin => "admin",
+            Self::Slice => "slice",
+        }
+    }
+}
+
+/// Where the config is read from, and the command-line listener overrides.
+#[derive(Debug, Clone, Default)]
+pub struct ConfigSource {
+    /// The config file; `None` serves the embedded default.
+    pub file: Option<PathBuf>,
+    /// Where runtime slices persist; `None` keeps them in memory only.
+    pub overlay: Option<PathBuf>,
+    /// `--listen`, replacing `server.listen`.
+    pub listen: Option<SocketAddr>,
+    /// `--admin-listen`, replacing `server.admin_listen`.
+    pub admin_listen: Option<SocketAddr>,
+}
+
+fn read_error(path: &Path, e: &std::io::Error) -> ConfigError {
+    ConfigError::Parse(format!("reading {}: {e}", path.display()))
+}
+
+impl ConfigSource {
+    /// A description for logs and the admin view.
+    #[must_use]
+    pub fn describe(&self) -> String {
+        self.file
+            .as_ref()
+            .map_or_else(|| "embedded config/default.toml".to_owned(), |p| p.display().to_string())
+    }
+
+    /// Reads the runtime slices persisted in the overlay file (none when it does not exist yet).
+    ///
+    /// # Errors
+    /// When the overlay exists but cannot be read or parsed.
+    pub fn read_overlay(&self) -> Result<BTreeMap<String, RawSlice>, ConfigError> {
+        let Some(path) = &self.overlay else { return Ok(BTreeMap::new()) };
+        match std::fs::read_to_string(path) {
+            Ok(text) => {
+                let raw: RawConfig = toml::from_str(&text)
+                    .map_err(|e| ConfigError::Parse(format!("overlay {}: {e}", path.display())))?;
+                Ok(raw.slices)
+            }
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(BTreeMap::new()),
+            Err(e) => Err(read_error(path, &e)),
+        }
+    }
+
+    /// Reads and parses the file (or the embedded default), without validating values.
+    ///
+    /// # Errors
+    /// When the file cannot be read or is not a config document.
+    pub fn read_file(&self) -> Result<RawConfig, ConfigError> {
+        let text = match &self.file {
+            None => DEFAULT_TOML.to_owned(),
+            Some(path) => std::fs::read_to_string(path).map_err(|e| read_error(path, &e))?,
+        };
+        toml::from_str(&text).map_err(|e| ConfigError::Parse(e.to_string()))
+    }
+
+    /// Reads the file (or the embedded default), layers `runtime` slices over it, validates, and
+    /// applies the listener overrides.
+    ///
+    /// # Errors
+    /// The first [`ConfigError`], naming the file or the field.
+    pub fn load(&self, runtime: &BTreeMap<String, RawSlice>) -> Result<Config, ConfigError> {
+        self.build(self.read_file()?, runtime)
+    }
+
+    /// Layers `runtime` slices over a parsed file, validates, and applies the listener overrides.
+    ///
+    /// # Errors
+    /// The first [`ConfigError`], naming the field.
+    pub fn build(
+        &self,
+        mut raw: RawConfig,
+        runtime: &BTreeMap<String, RawSlice>,
+    ) -> Result<Config, ConfigError> {
+        for (name, slice) in runtime {
+            raw.slices.insert(name.clone(), slice.clone());
+        }
+        let mut config = Config::from_raw(raw)?;
+        if let Some(a) = self.listen {
+            config.server.listen = a;
+        }
+        if let Some(a) = self.admin_listen {
+            config.server.admin_listen = a;
+        }
+        Ok(config)
+    }
+}
+
+/// The outcome of a runtime slice change.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SliceChange {
+    /// Generation now serving.
+    pub generation: u64,
+    /// Whether the change was written to the overlay file (survives a restart).
+    pub persisted: bool,
+}
+
+/// Why a runtime slice change was not applied.
+#[derive(Debug, thiserror::Error)]
+pub enum SliceChangeError {
+    /// The resulting config is invalid; nothing changed.
+    #[error(transparent)]
+    Invalid(#[from] ConfigError),
+    /// `DELETE` of a slice that is not a runtime slice.
+    #[error(
+        "slice {0:?} is not a runtime slice; slices from the config file are changed by editing the file"
+    )]
+    NotRuntime(String),
+    /// The overlay file could not be written; nothing changed.
+    #[error("writing the overlay {path}: {error}")]
+    Persist {
+        /// Overlay path.
+        path: String,
+        /// The I/O error.
+        error: std::io::Error,
+    },
+}
+
+/// Swaps validated configs into the live engine; one at a time.
+#[derive(Debug)]
+pub struct Reloader {
+    source: ConfigSource,
+    engine: Arc<ArcSwap<Engine>>,
+    metrics: Arc<Metrics>,
+    /// The file as last accepted, and the runtime slices layered over it. A runtime change
+    /// rebuilds from the accepted file, not the disk, so a broken edit waiting on disk cannot
+    /// block it. The mutex also serialises swaps, so generations never race; it is a std mutex
+    /// because every holder does short synchronous work (read a small file, validate).
+    layers: Mutex<Layers>,
+}
+
+#[derive(Debug)]
+struct Layers {
+    file: RawConfig,
+    runtime: BTreeMap<String, RawSlice>,
+}
+
+impl Reloader {
+    /// A reloader over `engine`, whose current config was built from `file` with `runtime`.
+    #[must_use]
+    pub fn new(
+        source: ConfigSource,
+        engine: Arc<ArcSwap<Engine>>,
+        metrics: Arc<Metrics>,
+        file: RawConfig,
+        runtime: BTreeMap<String, RawSlice>,
+    ) -> Self {
+        Self { source, engine, metrics, layers: Mutex::new(Layers { file, runtime }) }
+    }
+
+    fn layers(&self) -> std::sync::MutexGuard<'_, Layers> {
+        self.layers.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+    }
+
+    /// Where the config comes from.
+    #[must_use]
+    pub fn source(&self) -> &ConfigSource {
+        &self.source
+    }
+
+    /// Names of the runtime slices.
+    #[must_use]
+    pub fn runtime_slices(&self) -> Vec<String> {
+        self.layers().runtime.keys().cloned().collect()
+    }
+
+    fn store(&self, config: Config, trigger: Trigger) -> u64 {
+        let old = self.engine.load_full();
+        let fixed = &old.config().server;
+        let new = &config.server;
+        if new.listen != fixed.listen
+            || new.admin_listen != fixed.admin_listen
+            || new.pool_threads != fixed.pool_threads
+            || new.max_in_flight != fixed.max_in_flight
+        {
+            tracing::warn!(
+                "listeners, pool_threads and max_in_flight change only on restart; keeping the running ones"
+            );
+        }
+        let generation = old.generation() + 1;
+        self.engine.store(Arc::new(Engine::new(config, generation)));
+        self.metrics.config_generation.set(i64::try_from(generation).unwrap_or(i64::MAX));
+        self.metrics.config_reloads.with_label_values(&[trigger.label()]).inc();
+        tracing::info!(generation, trigger = trigger.label(), "config swapped");
+        generation
+    }
+
+    fn refuse(&self, trigger: Trigger, e: &ConfigError) {
+        self.metrics.config_reload_failures.with_label_values(&[trigger.label()]).inc();
+        tracing::warn!(trigger = trigger.label(), error = %e, "config refused; the previous one keeps serving");
+    }
+
+    /// Re-reads the source and swaps the result in.
+    ///
+    /// # Errors
+    /// The validation error; the old config keeps serving.
+    pub fn reload(&self, trigger: Trigger) -> Result<u64, ConfigError> {
+        let mut layers = self.layers();
+        let built = self
+            .source
+            .read_file()
+            .and_then(|file| Ok((self.source.build(file.clone(), &layers.runtime)?, file)));
+        match built {
+            Ok((config, file)) => {
+                layers.file = file;
+                Ok(self.store(config, trigger))
+            }
+            Err(e) => {
+                self.refuse(trigger, &e);
+                Err(e)
+            }
+        }
+    }
+
+    /// Sets (or replaces) runtime slice `name`.
+    ///
+    /// # Errors
+    /// [`SliceChangeError::Invalid`] when the resulting config is invalid,
+    /// [`SliceChangeError::Persist`] when the overlay cannot be written; nothing changes then.
+    pub fn put_slice(&self, name: &str, slice: RawSlice) -> Result<SliceChange, SliceChangeError> {
+        let mut layers = self.layers();
+        let mut next = layers.runtime.clone();
+        next.insert(name.to_owned(), slice);
+        self.apply(&mut layers, next)
+    }
+
+    /// Removes runtime slice `name`; the file's slice of that name, if any, serves again.
+    ///
+    /// # Errors
+    /// [`SliceChangeError::NotRuntime`] if `name` is not a runtime slice; otherwise as
+    /// [`Reloader::put_slice`] (removing `default` from the runtime layer is fine only when the
+    /// file defines it).
+    pub fn delete_slice(&self, name: &str) -> Result<SliceChange, SliceChangeError> {
+        let mut layers = self.layers();
+        if !layers.runtime.contains_key(name) {
+            return Err(SliceChangeError::NotRuntime(name.to_owned()));
+        }
+        let mut next = layers.runtime.clone();
+        next.remove(name);
+        self.apply(&mut layers, next)
+    }
+
+    fn apply(
+        &self,
+        layers: &mut Layers,
+        next: BTreeMap<String, RawSlice>,
+    ) -> Result<SliceChange, SliceChangeError> {
+        let config = match self.source.build(layers.file.clone(), &next) {
+            Ok(c) => c,
+            Err(e) => {
+                self.refuse(Trigger::Slice, &e);
+                return Err(e.into());
+            }
+        };
+        let persisted = match &self.source.overlay {
+            None => false,
+            Some(path) => {
+                write_overlay(path, &next)
+                    .map_err(|error| SliceChangeError::Persist { path: path.display().to_string(), error })?;
+                true
+            }
+        };
+        layers.runtime = next;
+        Ok(SliceChange { generation: self.store(config, Trigger::Slice), persisted })
+    }
+}
+
+/// Writes the runtime slices as TOML, atomically: temporary file, fsync, rename.
+fn write_overlay(path: &Path, slices: &BTreeMap<String, RawSlice>) -> std::io::Result<()> {
+    let doc = RawConfig { server: Default::default(), slices: slices.clone() };
+    let text = toml::to_string(&doc).map_err(std::io::Error::other)?;
+    let header = "# Runtime slices set through the medley admin API; rewritten on every change.\n";
+    let tmp = path.with_extension("tmp");
+    {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(header.as_bytes())?;
+        f.write_all(text.as_bytes())?;
+        f.sync_all()?;
+    }
+    std::fs::rename(&tmp, path)
+}
+
+/// How long file events must be quiet before a reload: editors write, rename and chmod in bursts.
+pub const DEBOUNCE: Duration = Duration::from_millis(200);
+
+/// Watches the config file and reloads when it changes, until `shutdown`.
+///
+/// The watch is on the file's directory, not the file: editors that save by writing a new file
+/// and renaming it over the old one replace the inode a file watch would follow. Events for other
+/// names in the directory are ignored.
+///
+/// # Errors
+/// When the watch cannot be set up (the directory is gone, or inotify limits are reached).
+pub fn watch(
+    reloader: Arc<Reloader>,
+    shutdown: Shutdown,
+) -> notify::Result<Option<tokio::task::JoinHandle<()>>> {
+    use notify::Watcher as _;
+    let Some(file) = reloader.source().file.clone() else { return Ok(None) };
+    let dir = file
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
+    let name = file.file_name().map(std::ffi::OsStr::to_os_string);
+    let (tx, mut rx) = tokio::sync::mpsc::unbounded_channel();
+    let mut watcher = notify::recommended_watcher(move |event: notify::Result<notify::Event>| {
+        if let Ok(event) = event {
+            if event.paths.iter().any(|p| p.file_name().map(std::ffi::OsStr::to_os_string) == name) {
+                let _ = tx.send(());
+            }
+        }
+    })?;
+    watcher.watch(&dir, notify::RecursiveMode::NonRecursive)?;
+    Ok(Some(tokio::spawn(async move {
+        // The watcher lives as long as this task.
+        let _watcher = watcher;
+        let stop = shutdown.started();
+        tokio::pin!(stop);
+        loop {
+            tokio::select! {
+                () = &mut stop => break,
+                event = rx.recv() => {
+                    if event.is_none() {
+                        break;
+                    }
+                    // Debounce: wait until the directory has been quiet for DEBOUNCE.
+                    while let Ok(Some(())) = tokio::time::timeout(DEBOUNCE, rx.recv()).await {}
+                    let r = reloader.clone();
+                    let _ = tokio::task::spawn_blocking(move || r.reload(Trigger::File)).await;
+                }
+            }
+        }
+    })))
+}
+
+/// Reloads on SIGHUP until `shutdown` (Unix only; elsewhere it returns at once).
+pub async fn on_sighup(reloader: Arc<Reloader>, shutdown: Shutdown) {
+    #[cfg(unix)]
+    {
+        let Ok(mut hup) = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup()) else {
+            tracing::warn!("cannot listen for SIGHUP; reload through the file or the admin API");
+            return;
+        };
+        let stop = shutdown.started();
+        tokio::pin!(stop);
+        loop {
+            tokio::select! {
+                () = &mut stop => break,
+                got = hup.recv() => {
+                    if got.is_none() {
+                        break;
+                    }
+                    let r = reloader.clone();
+                    let _ = tokio::task::spawn_blocking(move || r.reload(Trigger::Signal)).await;
+                }
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    let _ = (reloader, shutdown);
+}
