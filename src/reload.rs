@@ -9,7 +9,8 @@
 //! old engine keeps serving. Requests already running keep the snapshot they loaded.
 //!
 //! Runtime slices (set through the admin API) are layered over the file's slices of the same
-//! name, on every reload, until deleted. With `--overlay FILE` they are also written to that file
+//! name, on every reload, until deleted. A runtime change rebuilds from the last file that was
+//! accepted, so a broken edit waiting on disk neither blocks it nor sneaks in with it. With `--overlay FILE` they are also written to that file
 //! atomically (a temporary file in the same directory, synced, then renamed over it) and read back
 //! at start, so they survive a restart; without it they live until the process exits, and the
 //! admin API says so in every answer.

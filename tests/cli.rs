@@ -356,3 +356,23 @@ fn sighup_with_an_invalid_file_keeps_the_old_config() {
     assert!(Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap().success());
     assert_eq!(child.wait().unwrap().code(), Some(0));
 }
+
+/// The README's Python arm hash (docs/arm_bucket.py, run by CPython) agrees with the server's.
+#[test]
+fn python_arm_hash_matches_the_server() {
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/docs/arm_bucket.py");
+    for (slice, unit, total) in [
+        ("home", "user-1", 100_u64),
+        ("home", "user-8812", 100),
+        ("search", "", 7),
+        ("email", "s-ü-1", 1_000_000),
+    ] {
+        let out = Command::new("python3")
+            .args([script, slice, unit, &total.to_string()])
+            .output()
+            .expect("python3 on PATH");
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        let python: u64 = String::from_utf8(out.stdout).unwrap().trim().parse().unwrap();
+        assert_eq!(python, medley::config::arm_bucket(slice, unit, total), "{slice}/{unit}");
+    }
+}

@@ -82,6 +82,10 @@ async fn config(State(state): State<AppState>) -> Response {
         "source": source.describe(),
         "overlay": source.overlay.as_ref().map(|p| p.display().to_string()),
         "runtime_slices": state.reloader.runtime_slices(),
+        // The file's values, with runtime slices merged; listeners as actually bound may differ
+        // (--listen, --admin-listen), so they are reported beside it.
+        "listen": engine.config().server.listen.to_string(),
+        "admin_listen": engine.config().server.admin_listen.to_string(),
         "config": engine.config().raw,
     }))
 }
