@@ -57,6 +57,33 @@ pub enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
     },
+    /// Write a demo corpus of JSONL requests (an invented outdoor-gear shop), deterministic per seed.
+    Sample {
+        /// Requests to write.
+        #[arg(long, default_value_t = 1000)]
+        requests: usize,
+        /// Candidates per request (default 200; 6 with --one).
+        #[arg(long)]
+        candidates: Option<usize>,
+        /// Embedding dimension (default 32; 4 with --one).
+        #[arg(long)]
+        dim: Option<usize>,
+        /// Seed; the same seed writes the same bytes.
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Add "clicked": held-out positives drawn from each user's taste, for offline replay.
+        #[arg(long)]
+        with_clicks: bool,
+        /// Send embeddings as embedding_b64 (smaller, faster to parse).
+        #[arg(long)]
+        b64: bool,
+        /// Print one small request, for a first curl.
+        #[arg(long)]
+        one: bool,
+        /// Output file, or - for stdout.
+        #[arg(long, default_value = "-")]
+        output: String,
+    },
     /// Validate a config file and print what it would serve; exit 1 if it is invalid.
     CheckConfig {
         /// The config file (TOML).

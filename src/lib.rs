@@ -12,6 +12,7 @@
 //! - [`pool`]: the bounded CPU pool kernels run on.
 //! - [`http`]: routers, middleware and [`http::serve`]; [`metrics`] and [`shutdown`] beside it.
 //! - [`batch`]: JSONL in, JSONL out, on every core; [`cli`]: the command-line types.
+//! - [`sample`]: the demo corpus (an invented outdoor-gear shop).
 //!
 //! # One request
 //! `POST /v1/rerank` reaches [`http`], whose middleware counts it and takes a concurrency permit
@@ -67,6 +68,7 @@ pub mod metrics;
 pub mod model;
 pub mod pool;
 pub mod reload;
+pub mod sample;
 pub mod shadow;
 pub mod shutdown;
 pub mod wire;

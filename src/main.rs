@@ -86,6 +86,24 @@ fn run(command: Command) -> anyhow::Result<()> {
             eprintln!("{summary}");
             Ok(())
         }
+        Command::Sample { requests, candidates, dim, seed, with_clicks, b64, one, output } => {
+            let spec = medley::sample::SampleSpec {
+                requests: if one { 1 } else { requests },
+                candidates: candidates.unwrap_or(if one { 6 } else { 200 }),
+                dim: dim.unwrap_or(if one { 4 } else { 32 }),
+                seed,
+                with_clicks,
+                b64,
+            };
+            let mut writer: Box<dyn Write> = if output == "-" {
+                Box::new(BufWriter::new(std::io::stdout().lock()))
+            } else {
+                Box::new(BufWriter::new(
+                    std::fs::File::create(&output).with_context(|| format!("creating {output}"))?,
+                ))
+            };
+            medley::sample::write(&spec, &mut writer).context("writing the corpus")
+        }
         Command::CheckConfig { file } => {
             let config = load_config(Some(&file))?;
             print!("{}", medley::config::describe(&config));

@@ -376,3 +376,53 @@ fn python_arm_hash_matches_the_server() {
         assert_eq!(python, medley::config::arm_bucket(slice, unit, total), "{slice}/{unit}");
     }
 }
+
+/// `medley sample`: the same seed writes the same bytes; `--one` writes one small request that
+/// the server accepts; on its corpus, score order repeats the dominant category and DPP does not
+/// (the accuracy–diversity trade-off the corpus exists to show; common practice, not a proof).
+#[test]
+fn sample_is_deterministic_and_gives_diversification_something_to_trade() {
+    let run = |args: &[&str]| {
+        let out = Command::new(BIN).arg("sample").args(args).output().unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        out.stdout
+    };
+    let a = run(&["--requests", "60", "--candidates", "80", "--dim", "16", "--seed", "5", "--with-clicks"]);
+    assert_eq!(
+        a,
+        run(&["--requests", "60", "--candidates", "80", "--dim", "16", "--seed", "5", "--with-clicks"])
+    );
+    let one = run(&["--one"]);
+    assert_eq!(one.iter().filter(|&&b| b == b'\n').count(), 1);
+
+    let dir = tempdir("sample");
+    let mut mean_entropy = Vec::new();
+    for (algorithm, lambda) in [("relevance", 0.0), ("dpp", 0.5)] {
+        let lines: Vec<String> = String::from_utf8(a.clone())
+            .unwrap()
+            .lines()
+            .map(|l| {
+                let mut v: Value = serde_json::from_str(l).unwrap();
+                v["algorithm"] = json!(algorithm);
+                v["lambda"] = json!(lambda);
+                v.to_string()
+            })
+            .collect();
+        let input = dir.join(format!("{algorithm}.jsonl"));
+        std::fs::write(&input, lines.join("\n")).unwrap();
+        let out = Command::new(BIN).args(["rerank", "--input", input.to_str().unwrap()]).output().unwrap();
+        let entropies: Vec<f64> = String::from_utf8(out.stdout)
+            .unwrap()
+            .lines()
+            .map(|l| {
+                serde_json::from_str::<Value>(l).unwrap()["diversity"]["category_entropy_bits"]
+                    .as_f64()
+                    .unwrap()
+            })
+            .collect();
+        assert_eq!(entropies.len(), 60);
+        mean_entropy.push(entropies.iter().sum::<f64>() / 60.0);
+    }
+    assert!(mean_entropy[0] < 1.0, "score order should repeat the favourite category: {mean_entropy:?}");
+    assert!(mean_entropy[1] > mean_entropy[0] + 1.0, "dpp at 0.5 should spread categories: {mean_entropy:?}");
+}

@@ -1,0 +1,225 @@
+//! `medley sample`: a demo corpus in an invented scenario, an outdoor-gear shop, so that
+//! diversification has something real to trade.
+//!
+//! The catalogue has six categories (tents, stoves, footwear, packs, navigation, apparel) with a
+//! centroid each; an item's embedding is its category centroid plus noise, so embeddings cluster
+//! by category. Categories differ in popularity, so a request's candidates are dominated by one
+//! or two of them. Each user has a taste vector (mostly one favourite category, partly a second)
+//! and the score a ranking model would give is a noisy reading of the affinity between taste and
+//! item. With `--with-clicks` each request also lists held-out positives: items drawn from the
+//! user's *true* affinity (a different noise draw than the score, plus an appetite for the second
+//! category), so they are not simply the top scores and offline accuracy means something.
+//!
+//! Everything derives from the seed through SplitMix64 (Steele, Lea & Flood, "Fast splittable
+//! pseudorandom number generators", OOPSLA 2014) and Box–Muller normals, so a seed always writes
+//! the same bytes.
+
+use std::io::Write;
+
+use serde_json::{json, Value};
+
+/// Categories of the invented shop, most popular first, with id prefixes and popularity weights.
+pub const CATEGORIES: [(&str, &str, f64); 6] = [
+    ("tents", "tent", 0.34),
+    ("footwear", "boot", 0.22),
+    ("packs", "pack", 0.16),
+    ("stoves", "stove", 0.12),
+    ("apparel", "jacket", 0.10),
+    ("navigation", "compass", 0.06),
+];
+
+/// What to generate.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SampleSpec {
+    /// Requests to write.
+    pub requests: usize,
+    /// Candidates per request.
+    pub candidates: usize,
+    /// Embedding dimension.
+    pub dim: usize,
+    /// Seed.
+    pub seed: u64,
+    /// Add `"clicked"` held-out positives.
+    pub with_clicks: bool,
+    /// Send embeddings as `embedding_b64` instead of JSON arrays.
+    pub b64: bool,
+}
+
+/// SplitMix64 with Box–Muller normals.
+#[derive(Debug, Clone)]
+struct Rng {
+    state: u64,
+    spare: Option<f64>,
+}
+
+impl Rng {
+    fn new(seed: u64) -> Self {
+        Self { state: seed, spare: None }
+    }
+
+    fn next_u64(&mut self) -> u64 {
+        self.state = self.state.wrapping_add(0x9e37_79b9_7f4a_7c15);
+        let mut z = self.state;
+        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+        z ^ (z >> 31)
+    }
+
+    /// Uniform in (0, 1).
+    fn unit(&mut self) -> f64 {
+        ((self.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
+    }
+
+    fn normal(&mut self) -> f64 {
+        if let Some(z) = self.spare.take() {
+            return z;
+        }
+        let (u, v) = (self.unit(), self.unit());
+        let r = (-2.0 * u.ln()).sqrt();
+        let t = std::f64::consts::TAU * v;
+        self.spare = Some(r * t.sin());
+        r * t.cos()
+    }
+
+    fn below(&mut self, n: usize) -> usize {
+        (self.next_u64() % n as u64) as usize
+    }
+
+    /// An index drawn with probability proportional to `weights`.
+    fn weighted(&mut self, weights: &[f64]) -> usize {
+        let total: f64 = weights.iter().sum();
+        let mut x = self.unit() * total;
+        for (i, &w) in weights.iter().enumerate() {
+            if x < w {
+                return i;
+            }
+            x -= w;
+        }
+        weights.len() - 1
+    }
+}
+
+fn normalise(v: &mut [f64]) {
+    let n = v.iter().map(|x| x * x).sum::<f64>().sqrt();
+    if n > 0.0 {
+        v.iter_mut().for_each(|x| *x /= n);
+    }
+}
+
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    a.iter().zip(b).map(|(x, y)| x * y).sum()
+}
+
+/// Writes `spec.requests` JSONL requests to `out`.
+///
+/// # Errors
+/// Only I/O errors on `out`.
+pub fn write(spec: &SampleSpec, out: &mut dyn Write) -> std::io::Result<()> {
+    let mut rng = Rng::new(spec.seed);
+    let d = spec.dim.max(1);
+    let centroids: Vec<Vec<f64>> = (0..CATEGORIES.len())
+        .map(|_| {
+            let mut c: Vec<f64> = (0..d).map(|_| rng.normal()).collect();
+            normalise(&mut c);
+            c
+        })
+        .collect();
+    let popularity: Vec<f64> = CATEGORIES.iter().map(|c| c.2).collect();
+    for r in 0..spec.requests {
+        let line = request(spec, r, &centroids, &popularity, &mut rng);
+        serde_json::to_writer(&mut *out, &line)?;
+        out.write_all(b"\n")?;
+    }
+    out.flush()
+}
+
+fn request(spec: &SampleSpec, r: usize, centroids: &[Vec<f64>], popularity: &[f64], rng: &mut Rng) -> Value {
+    let d = centroids[0].len();
+    // The user: a favourite category, a second interest, and some idiosyncrasy.
+    let user = rng.below(10_000);
+    let favourite = rng.weighted(popularity);
+    let second = (favourite + 1 + rng.below(CATEGORIES.len() - 1)) % CATEGORIES.len();
+    let mut taste: Vec<f64> = (0..d)
+        .map(|t| {
+            0.8 * centroids[favourite][t]
+                + 0.45 * centroids[second][t]
+                + 0.35 * rng.normal() / (d as f64).sqrt()
+        })
+        .collect();
+    normalise(&mut taste);
+
+    let mut candidates = Vec::with_capacity(spec.candidates);
+    let mut affinity = Vec::with_capacity(spec.candidates);
+    for i in 0..spec.candidates {
+        let cat = rng.weighted(popularity);
+        let mut e: Vec<f64> =
+            (0..d).map(|t| centroids[cat][t] + 0.6 * rng.normal() / (d as f64).sqrt()).collect();
+        normalise(&mut e);
+        let true_affinity = dot(&taste, &e);
+        // The ranking model's score: the affinity seen through noise, squashed to (0, 1).
+        let score = 1.0 / (1.0 + (-(4.0 * true_affinity + 0.6 * rng.normal())).exp());
+        let (name, prefix, _) = CATEGORIES[cat];
+        let id = format!("{prefix}-{:05}", (r * spec.candidates + i) % 100_000);
+        let embedding: Vec<f32> = e.iter().map(|&x| x as f32).collect();
+        let mut c = json!({"id": id, "score": (score * 1e6).round() / 1e6, "category": name});
+        if spec.b64 {
+            c["embedding_b64"] = json!(crate::wire::encode_b64_embedding(&embedding));
+        } else {
+            c["embedding"] = json!(embedding);
+        }
+        candidates.push(c);
+        // What the user would actually pick: affinity with its own noise, plus an appetite for
+        // the second interest that the score does not see.
+        let appetite = if cat == second { 0.35 } else { 0.0 };
+        affinity.push(true_affinity + appetite + 0.25 * rng.normal());
+    }
+    let mut request = json!({
+        "request_id": format!("req-{r:06}"),
+        "unit_id": format!("user-{user:04}"),
+        "candidates": candidates,
+    });
+    if spec.with_clicks && spec.candidates > 0 {
+        // 1 to 3 positives, drawn in proportion to exp(5 · affinity), without replacement.
+        let clicks = 1 + rng.below(3.min(spec.candidates));
+        let mut weights: Vec<f64> = affinity.iter().map(|a| (5.0 * a).exp()).collect();
+        let mut clicked = Vec::with_capacity(clicks);
+        for _ in 0..clicks {
+            let i = rng.weighted(&weights);
+            weights[i] = 0.0;
+            clicked.push(request["candidates"][i]["id"].clone());
+        }
+        request["clicked"] = Value::Array(clicked);
+    }
+    request
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn corpus(spec: &SampleSpec) -> Vec<u8> {
+        let mut out = Vec::new();
+        write(spec, &mut out).unwrap();
+        out
+    }
+
+    #[test]
+    fn same_seed_same_bytes_and_valid_requests() {
+        let spec =
+            SampleSpec { requests: 20, candidates: 50, dim: 16, seed: 7, with_clicks: true, b64: false };
+        let a = corpus(&spec);
+        assert_eq!(a, corpus(&spec));
+        assert_ne!(a, corpus(&SampleSpec { seed: 8, ..spec }));
+        let engine = crate::engine::Engine::new(crate::config::Config::embedded_default(), 1);
+        for line in a.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
+            let v: Value = serde_json::from_slice(line).unwrap();
+            let ids: Vec<&str> =
+                v["candidates"].as_array().unwrap().iter().map(|c| c["id"].as_str().unwrap()).collect();
+            let clicked = v["clicked"].as_array().unwrap();
+            assert!((1..=3).contains(&clicked.len()));
+            assert!(clicked.iter().all(|c| ids.contains(&c.as_str().unwrap())));
+            let request = crate::wire::decode_request(line).unwrap();
+            engine.prepare(request).unwrap();
+        }
+    }
+}
