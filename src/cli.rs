@@ -84,6 +84,29 @@ pub enum Command {
         #[arg(long, default_value = "-")]
         output: String,
     },
+    /// Replay logged requests with their clicks over a grid of algorithms and lambdas, and report
+    /// the accuracy–diversity frontier (table, frontier.csv, frontier.svg).
+    Replay {
+        /// Logged requests, one per line, each with "clicked": [ids] (`medley sample --with-clicks` writes such a file).
+        #[arg(long)]
+        input: PathBuf,
+        /// Algorithms to compare, comma-separated.
+        #[arg(long, default_value = "relevance,mmr,dpp,quota")]
+        algorithms: String,
+        /// Lambdas: a list (0,0.1,0.5) or start:end:step.
+        #[arg(long, default_value = "0:1:0.1")]
+        lambdas: String,
+        /// Slate length.
+        #[arg(long, default_value_t = 10)]
+        k: usize,
+        /// Directory for frontier.csv and frontier.svg.
+        #[arg(long, default_value = "replay-out")]
+        out: PathBuf,
+        /// Choose per algorithm the most diverse lambda within a bound, e.g. "ndcg>=0.95*baseline"
+        /// (metrics: ndcg, recall, relevance_retained), and print a slice config for it.
+        #[arg(long)]
+        pick: Option<String>,
+    },
     /// Validate a config file and print what it would serve; exit 1 if it is invalid.
     CheckConfig {
         /// The config file (TOML).

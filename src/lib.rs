@@ -12,7 +12,8 @@
 //! - [`pool`]: the bounded CPU pool kernels run on.
 //! - [`http`]: routers, middleware and [`http::serve`]; [`metrics`] and [`shutdown`] beside it.
 //! - [`batch`]: JSONL in, JSONL out, on every core; [`cli`]: the command-line types.
-//! - [`sample`]: the demo corpus (an invented outdoor-gear shop).
+//! - [`sample`]: the demo corpus (an invented outdoor-gear shop); [`replay`] and
+//!   [`replay_plot`]: the offline accuracy–diversity frontier.
 //!
 //! # One request
 //! `POST /v1/rerank` reaches [`http`], whose middleware counts it and takes a concurrency permit
@@ -68,6 +69,8 @@ pub mod metrics;
 pub mod model;
 pub mod pool;
 pub mod reload;
+pub mod replay;
+pub mod replay_plot;
 pub mod sample;
 pub mod shadow;
 pub mod shutdown;

@@ -104,6 +104,36 @@ fn run(command: Command) -> anyhow::Result<()> {
             };
             medley::sample::write(&spec, &mut writer).context("writing the corpus")
         }
+        Command::Replay { input, algorithms, lambdas, k, out, pick } => {
+            let algorithms = algorithms
+                .split(',')
+                .map(|name| {
+                    medley::diversify::by_name(name.trim())
+                        .with_context(|| format!("unknown algorithm {name:?} in --algorithms"))
+                })
+                .collect::<anyhow::Result<Vec<_>>>()?;
+            let lambdas =
+                medley::replay::parse_lambdas(&lambdas).map_err(anyhow::Error::msg).context("--lambdas")?;
+            let pick =
+                pick.map(|p| medley::replay::parse_pick(&p)).transpose().map_err(anyhow::Error::msg)?;
+            anyhow::ensure!((1..=1000).contains(&k), "--k {k} is outside 1..=1000");
+            // Replay validates on an unlocked default slice with the embedded limits.
+            let engine = Engine::new(Config::embedded_default(), 1);
+            let file = std::fs::File::open(&input).with_context(|| format!("opening {}", input.display()))?;
+            let corpus = medley::replay::read_corpus(&engine, &mut BufReader::new(file))
+                .context("reading the corpus")?;
+            for (line, why) in corpus.skipped.iter().take(5) {
+                eprintln!("medley replay: skipped line {line}: {why}");
+            }
+            anyhow::ensure!(
+                !corpus.is_empty(),
+                "no usable line in {} (each needs embeddings and \"clicked\")",
+                input.display()
+            );
+            let opts = medley::replay::Options { algorithms, lambdas, k, out, pick };
+            print!("{}", medley::replay::run(&corpus, &opts)?);
+            Ok(())
+        }
         Command::CheckConfig { file } => {
             let config = load_config(Some(&file))?;
             print!("{}", medley::config::describe(&config));

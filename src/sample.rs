@@ -125,15 +125,55 @@ pub fn write(spec: &SampleSpec, out: &mut dyn Write) -> std::io::Result<()> {
         })
         .collect();
     let popularity: Vec<f64> = CATEGORIES.iter().map(|c| c.2).collect();
+    let catalogue = Catalogue::new(spec, &centroids, &popularity, &mut rng);
     for r in 0..spec.requests {
-        let line = request(spec, r, &centroids, &popularity, &mut rng);
+        let line = request(spec, r, &centroids, &popularity, &catalogue, &mut rng);
         serde_json::to_writer(&mut *out, &line)?;
         out.write_all(b"\n")?;
     }
     out.flush()
 }
 
-fn request(spec: &SampleSpec, r: usize, centroids: &[Vec<f64>], popularity: &[f64], rng: &mut Rng) -> Value {
+/// The shop's items: requests draw their candidates from it, so items recur across requests and
+/// coverage and exposure mean something. Five times the candidates per request, at least 1 000.
+struct Catalogue {
+    category: Vec<usize>,
+    embedding: Vec<Vec<f64>>,
+    id: Vec<String>,
+    /// Draw weight: the category's popularity times a Zipf-like rank factor within it.
+    weight: Vec<f64>,
+}
+
+impl Catalogue {
+    fn new(spec: &SampleSpec, centroids: &[Vec<f64>], popularity: &[f64], rng: &mut Rng) -> Self {
+        let d = centroids[0].len();
+        let size = (5 * spec.candidates).max(1000);
+        let mut cat =
+            Self { category: Vec::new(), embedding: Vec::new(), id: Vec::new(), weight: Vec::new() };
+        let mut per_category = vec![0_usize; CATEGORIES.len()];
+        for _ in 0..size {
+            let c = rng.weighted(popularity);
+            per_category[c] += 1;
+            let mut e: Vec<f64> =
+                (0..d).map(|t| centroids[c][t] + 0.6 * rng.normal() / (d as f64).sqrt()).collect();
+            normalise(&mut e);
+            cat.id.push(format!("{}-{:04}", CATEGORIES[c].1, per_category[c]));
+            cat.weight.push(popularity[c] / (per_category[c] as f64).sqrt());
+            cat.category.push(c);
+            cat.embedding.push(e);
+        }
+        cat
+    }
+}
+
+fn request(
+    spec: &SampleSpec,
+    r: usize,
+    centroids: &[Vec<f64>],
+    popularity: &[f64],
+    catalogue: &Catalogue,
+    rng: &mut Rng,
+) -> Value {
     let d = centroids[0].len();
     // The user: a favourite category, a second interest, and some idiosyncrasy.
     let user = rng.below(10_000);
@@ -150,16 +190,24 @@ fn request(spec: &SampleSpec, r: usize, centroids: &[Vec<f64>], popularity: &[f6
 
     let mut candidates = Vec::with_capacity(spec.candidates);
     let mut affinity = Vec::with_capacity(spec.candidates);
-    for i in 0..spec.candidates {
-        let cat = rng.weighted(popularity);
-        let mut e: Vec<f64> =
-            (0..d).map(|t| centroids[cat][t] + 0.6 * rng.normal() / (d as f64).sqrt()).collect();
-        normalise(&mut e);
-        let true_affinity = dot(&taste, &e);
+    // Distinct catalogue items, drawn by weight (rejection on repeats; the catalogue is at least
+    // five times larger than a request, so few draws repeat).
+    let mut chosen = std::collections::HashSet::with_capacity(spec.candidates);
+    let mut picks = Vec::with_capacity(spec.candidates);
+    while picks.len() < spec.candidates.min(catalogue.id.len()) {
+        let item = rng.weighted(&catalogue.weight);
+        if chosen.insert(item) {
+            picks.push(item);
+        }
+    }
+    for item in picks {
+        let cat = catalogue.category[item];
+        let e = &catalogue.embedding[item];
+        let true_affinity = dot(&taste, e);
         // The ranking model's score: the affinity seen through noise, squashed to (0, 1).
         let score = 1.0 / (1.0 + (-(4.0 * true_affinity + 0.6 * rng.normal())).exp());
-        let (name, prefix, _) = CATEGORIES[cat];
-        let id = format!("{prefix}-{:05}", (r * spec.candidates + i) % 100_000);
+        let (name, _, _) = CATEGORIES[cat];
+        let id = catalogue.id[item].clone();
         let embedding: Vec<f32> = e.iter().map(|&x| x as f32).collect();
         let mut c = json!({"id": id, "score": (score * 1e6).round() / 1e6, "category": name});
         if spec.b64 {

@@ -1,0 +1,114 @@
+//! `frontier.svg`: the accuracy–diversity plane of a replay, drawn with plotters (SVG backend).
+//!
+//! x is mean category entropy (bits), y is nDCG@k. Each algorithm is one line through its lambdas
+//! in order, every point labelled with its lambda, and the line's name is written at its last
+//! point, so the plot reads without a legend. The relevance baseline is a separate black square
+//! labelled "relevance baseline".
+
+use plotters::prelude::*;
+
+use crate::replay::Point;
+
+/// Colours for up to six algorithms, then repeated.
+const COLOURS: [RGBColor; 6] = [
+    RGBColor(31, 119, 180),
+    RGBColor(214, 39, 40),
+    RGBColor(44, 160, 44),
+    RGBColor(148, 103, 189),
+    RGBColor(255, 127, 14),
+    RGBColor(23, 190, 207),
+];
+
+/// Renders the frontier as an SVG document.
+///
+/// # Errors
+/// A drawing error from plotters, as text.
+pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, String> {
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (900, 640)).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| e.to_string())?;
+        let (mut x0, mut x1, mut y0, mut y1) =
+            (baseline.entropy, baseline.entropy, baseline.ndcg, baseline.ndcg);
+        for p in points {
+            x0 = x0.min(p.entropy);
+            x1 = x1.max(p.entropy);
+            y0 = y0.min(p.ndcg);
+            y1 = y1.max(p.ndcg);
+        }
+        let pad = |lo: f64, hi: f64| {
+            let m = ((hi - lo) * 0.08).max(0.01);
+            (lo - m, hi + m)
+        };
+        let ((x0, x1), (y0, y1)) = (pad(x0, x1), pad(y0, y1));
+        let mut chart = ChartBuilder::on(&root)
+            .caption(format!("Accuracy–diversity frontier (k = {k})"), ("sans-serif", 22))
+            .margin(20)
+            .x_label_area_size(45)
+            .y_label_area_size(60)
+            .build_cartesian_2d(x0..x1, y0..y1)
+            .map_err(|e| e.to_string())?;
+        chart
+            .configure_mesh()
+            .x_desc("mean category entropy of the slate (bits)")
+            .y_desc(format!("nDCG@{k}"))
+            .draw()
+            .map_err(|e| e.to_string())?;
+        let mut names: Vec<&str> = Vec::new();
+        for p in points {
+            if !names.contains(&p.algorithm) {
+                names.push(p.algorithm);
+            }
+        }
+        for (c, name) in names.iter().enumerate() {
+            let colour = COLOURS[c % COLOURS.len()];
+            let mut line: Vec<&Point> = points.iter().filter(|p| p.algorithm == *name).collect();
+            line.sort_by(|a, b| a.lambda.total_cmp(&b.lambda));
+            chart
+                .draw_series(LineSeries::new(
+                    line.iter().map(|p| (p.entropy, p.ndcg)),
+                    colour.stroke_width(2),
+                ))
+                .map_err(|e| e.to_string())?;
+            chart
+                .draw_series(line.iter().map(|p| Circle::new((p.entropy, p.ndcg), 4, colour.filled())))
+                .map_err(|e| e.to_string())?;
+            chart
+                .draw_series(line.iter().map(|p| {
+                    Text::new(
+                        format!("λ={}", p.lambda),
+                        (p.entropy, p.ndcg),
+                        ("sans-serif", 12).into_font().color(&colour),
+                    )
+                }))
+                .map_err(|e| e.to_string())?;
+            if let Some(last) = line.last() {
+                chart
+                    .draw_series(std::iter::once(Text::new(
+                        format!("  {name}"),
+                        (last.entropy, last.ndcg),
+                        ("sans-serif", 16).into_font().color(&colour),
+                    )))
+                    .map_err(|e| e.to_string())?;
+            }
+        }
+        chart
+            .draw_series(std::iter::once(Rectangle::new(
+                [
+                    (baseline.entropy - (x1 - x0) * 0.006, baseline.ndcg - (y1 - y0) * 0.009),
+                    (baseline.entropy + (x1 - x0) * 0.006, baseline.ndcg + (y1 - y0) * 0.009),
+                ],
+                BLACK.filled(),
+            )))
+            .map_err(|e| e.to_string())?;
+        chart
+            .draw_series(std::iter::once(Text::new(
+                "  relevance baseline",
+                (baseline.entropy, baseline.ndcg),
+                ("sans-serif", 14),
+            )))
+            .map_err(|e| e.to_string())?;
+        root.present().map_err(|e| e.to_string())?;
+    }
+    Ok(svg)
+}
