@@ -3,7 +3,7 @@
 //! x is mean category entropy (bits), y is nDCG@k. Each algorithm is one line through its lambdas
 //! in order, every point labelled with its lambda, and the line's name is written at its last
 //! point, so the plot reads without a legend. The relevance baseline is a separate black square
-//! labelled "relevance baseline".
+//! labelled "relevance baseline"; every algorithm starts there, at lambda 0.
 
 use plotters::prelude::*;
 
@@ -73,22 +73,28 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
             chart
                 .draw_series(line.iter().map(|p| Circle::new((p.entropy, p.ndcg), 4, colour.filled())))
                 .map_err(|e| e.to_string())?;
+            // Lambda labels sit just above-right of their point; lambda 0 coincides with the
+            // baseline for every algorithm, whose label says so once.
             chart
-                .draw_series(line.iter().map(|p| {
-                    Text::new(
-                        format!("λ={}", p.lambda),
-                        (p.entropy, p.ndcg),
-                        ("sans-serif", 12).into_font().color(&colour),
-                    )
+                .draw_series(line.iter().filter(|p| p.lambda > 0.0).map(|p| {
+                    EmptyElement::at((p.entropy, p.ndcg))
+                        + Text::new(
+                            format!("λ={}", p.lambda),
+                            (6, -14),
+                            ("sans-serif", 12).into_font().color(&colour),
+                        )
                 }))
                 .map_err(|e| e.to_string())?;
             if let Some(last) = line.last() {
                 chart
-                    .draw_series(std::iter::once(Text::new(
-                        format!("  {name}"),
-                        (last.entropy, last.ndcg),
-                        ("sans-serif", 16).into_font().color(&colour),
-                    )))
+                    .draw_series(std::iter::once(
+                        EmptyElement::at((last.entropy, last.ndcg))
+                            + Text::new(
+                                name.to_string(),
+                                (8, 4),
+                                ("sans-serif", 16).into_font().color(&colour),
+                            ),
+                    ))
                     .map_err(|e| e.to_string())?;
             }
         }
@@ -102,11 +108,14 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
             )))
             .map_err(|e| e.to_string())?;
         chart
-            .draw_series(std::iter::once(Text::new(
-                "  relevance baseline",
-                (baseline.entropy, baseline.ndcg),
-                ("sans-serif", 14),
-            )))
+            .draw_series(std::iter::once(
+                EmptyElement::at((baseline.entropy, baseline.ndcg))
+                    + Text::new(
+                        "relevance baseline (every algorithm at λ = 0)",
+                        (10, -22),
+                        ("sans-serif", 14),
+                    ),
+            ))
             .map_err(|e| e.to_string())?;
         root.present().map_err(|e| e.to_string())?;
     }
