@@ -87,7 +87,7 @@ pub enum Command {
     /// Replay logged requests with their clicks over a grid of algorithms and lambdas, and report
     /// the accuracy–diversity frontier (table, frontier.csv, frontier.svg).
     Replay {
-        /// Logged requests, one per line, each with "clicked": [ids] (`medley sample --with-clicks` writes such a file).
+        /// Logged requests, one per line, each with a "clicked" list of ids (`medley sample --with-clicks` writes such a file).
         #[arg(long)]
         input: PathBuf,
         /// Algorithms to compare, comma-separated.
