@@ -252,9 +252,17 @@ pub fn arm_hash(slice: &str, unit_id: &str) -> u64 {
         h ^= u64::from(b);
         h = h.wrapping_mul(0x0000_0100_0000_01b3);
     }
-    h = (h ^ (h >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-    h = (h ^ (h >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-    h ^ (h >> 31)
+    mix64(h)
+}
+
+/// The SplitMix64 finaliser (Steele, Lea & Flood, OOPSLA 2014): a bijection of u64 whose output
+/// bits each depend on all input bits. Shared by the arm hash, shadow sampling and the corpus
+/// generator.
+#[must_use]
+pub fn mix64(mut z: u64) -> u64 {
+    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    z ^ (z >> 31)
 }
 
 /// The unit's bucket in `0..total_weight`: `(arm_hash · total_weight) >> 64`, which uses the

@@ -266,10 +266,7 @@ fn sampled(rate: f64) -> bool {
     if rate >= 1.0 {
         return true;
     }
-    let mut z = COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed);
-    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-    z ^= z >> 31;
+    let z = crate::config::mix64(COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed));
     ((z >> 11) as f64) / ((1u64 << 53) as f64) < rate
 }
 

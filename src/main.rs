@@ -9,7 +9,7 @@ use anyhow::Context as _;
 use clap::Parser as _;
 
 use medley::cli::{Cli, Command, LogFormat};
-use medley::config::{Config, DEFAULT_TOML};
+use medley::config::Config;
 use medley::engine::Engine;
 use medley::http::{serve, AppState};
 use medley::metrics::Metrics;
@@ -43,15 +43,19 @@ fn init_logging(format: LogFormat) {
     }
 }
 
-fn load_config(path: Option<&std::path::Path>) -> anyhow::Result<Config> {
-    let (text, source) = match path {
-        Some(p) => (
-            std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?,
-            p.display().to_string(),
-        ),
-        None => (DEFAULT_TOML.to_owned(), "the embedded config/default.toml".to_owned()),
-    };
-    Config::from_toml(&text).with_context(|| format!("invalid config in {source}"))
+/// Loads a config the way `serve` does (file or embedded default), without an overlay.
+fn load_config(path: Option<std::path::PathBuf>) -> anyhow::Result<Config> {
+    let source = ConfigSource { file: path, ..ConfigSource::default() };
+    source.load(&Default::default()).with_context(|| format!("invalid config in {}", source.describe()))
+}
+
+/// `-` is standard output; anything else a file to create.
+fn open_output(path: &str) -> anyhow::Result<Box<dyn Write>> {
+    Ok(if path == "-" {
+        Box::new(BufWriter::new(std::io::stdout().lock()))
+    } else {
+        Box::new(BufWriter::new(std::fs::File::create(path).with_context(|| format!("creating {path}"))?))
+    })
 }
 
 fn run(command: Command) -> anyhow::Result<()> {
@@ -65,7 +69,7 @@ fn run(command: Command) -> anyhow::Result<()> {
             runtime.block_on(serve_main(source))
         }
         Command::Rerank { input, output, config } => {
-            let config = load_config(config.as_deref())?;
+            let config = load_config(config)?;
             let pool = Pool::new(config.server.pool_threads, 0).context("starting the pool")?;
             let engine = Engine::new(config, 1);
             let mut reader: Box<dyn std::io::BufRead> = if input == "-" {
@@ -75,13 +79,7 @@ fn run(command: Command) -> anyhow::Result<()> {
                     std::fs::File::open(&input).with_context(|| format!("opening {input}"))?,
                 ))
             };
-            let mut writer: Box<dyn Write> = if output == "-" {
-                Box::new(BufWriter::new(std::io::stdout().lock()))
-            } else {
-                Box::new(BufWriter::new(
-                    std::fs::File::create(&output).with_context(|| format!("creating {output}"))?,
-                ))
-            };
+            let mut writer = open_output(&output)?;
             let summary = medley::batch::run(&engine, &pool, &mut reader, &mut writer)?;
             eprintln!("{summary}");
             Ok(())
@@ -95,13 +93,7 @@ fn run(command: Command) -> anyhow::Result<()> {
                 with_clicks,
                 b64,
             };
-            let mut writer: Box<dyn Write> = if output == "-" {
-                Box::new(BufWriter::new(std::io::stdout().lock()))
-            } else {
-                Box::new(BufWriter::new(
-                    std::fs::File::create(&output).with_context(|| format!("creating {output}"))?,
-                ))
-            };
+            let mut writer = open_output(&output)?;
             medley::sample::write(&spec, &mut writer).context("writing the corpus")
         }
         Command::Replay { input, algorithms, lambdas, k, out, pick } => {
@@ -135,7 +127,7 @@ fn run(command: Command) -> anyhow::Result<()> {
             Ok(())
         }
         Command::CheckConfig { file } => {
-            let config = load_config(Some(&file))?;
+            let config = load_config(Some(file))?;
             print!("{}", medley::config::describe(&config));
             Ok(())
         }
