@@ -361,12 +361,12 @@ pub fn pick<'a>(
 pub const CSV_HEADER: &str =
     "algorithm,lambda,recall,ndcg,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
 
-/// One CSV row.
+/// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
 #[must_use]
-pub fn csv_row(p: &Point) -> String {
+pub fn csv_row(label: &str, p: &Point) -> String {
     format!(
         "{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
-        p.algorithm,
+        label,
         p.lambda,
         p.recall,
         p.ndcg,
@@ -457,10 +457,11 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     std::fs::create_dir_all(&opts.out).with_context(|| format!("creating {}", opts.out.display()))?;
     let mut csv = String::from(CSV_HEADER);
     csv.push('\n');
-    csv.push_str(&csv_row(&baseline).replacen("relevance", "baseline", 1));
-    csv.push('\n');
-    for p in &points {
-        csv.push_str(&csv_row(p));
+    // The baseline row first, labelled as such, then every cell.
+    let rows: Vec<(&str, &Point)> =
+        std::iter::once(("baseline", &baseline)).chain(points.iter().map(|p| (p.algorithm, p))).collect();
+    for &(label, p) in &rows {
+        csv.push_str(&csv_row(label, p));
         csv.push('\n');
     }
     let csv_path = opts.out.join("frontier.csv");
@@ -486,8 +487,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
         "coverage",
         "gini"
     );
-    for (label, p) in std::iter::once(("baseline", &baseline)).chain(points.iter().map(|p| (p.algorithm, p)))
-    {
+    for &(label, p) in &rows {
         let _ = writeln!(
             report,
             "{:<10} {:>6.2} {:>9.4} {:>8.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
