@@ -54,15 +54,19 @@ fn admin(
     }
 }
 
-async fn generation(server: &Server) -> u64 {
-    let v: Value = admin(server, reqwest::Method::GET, "/admin/config", Some(TOKEN))
+/// `GET /admin/config` with the right token.
+async fn admin_config(server: &Server) -> Value {
+    admin(server, reqwest::Method::GET, "/admin/config", Some(TOKEN))
         .send()
         .await
         .unwrap()
         .json()
         .await
-        .unwrap();
-    v["config_generation"].as_u64().unwrap()
+        .unwrap()
+}
+
+async fn generation(server: &Server) -> u64 {
+    admin_config(server).await["config_generation"].as_u64().unwrap()
 }
 
 /// Sum of the integer-valued series (counters, histogram counts) that start with `prefix`.
@@ -156,13 +160,7 @@ async fn admin_is_closed_without_a_token_and_checks_it() {
         let r = reqwest::Client::new().post(server.url(path)).bearer_auth(TOKEN).send().await.unwrap();
         assert_eq!(r.status(), 404, "{path} must not exist on the public listener");
     }
-    let v: Value = admin(&server, reqwest::Method::GET, "/admin/config", Some(TOKEN))
-        .send()
-        .await
-        .unwrap()
-        .json()
-        .await
-        .unwrap();
+    let v = admin_config(&server).await;
     assert_eq!(v["config"]["slices"]["home"]["arms"][1]["name"], "treatment-b");
     assert_eq!(v["config_generation"], 1);
     server.stop().await;
