@@ -345,8 +345,11 @@ pub const DEBOUNCE: Duration = Duration::from_millis(200);
 /// Watches the config file and reloads when it changes, until `shutdown`.
 ///
 /// The watch is on the file's directory, not the file: editors that save by writing a new file
-/// and renaming it over the old one replace the inode a file watch would follow. Events for other
-/// names in the directory are ignored.
+/// and renaming it over the old one replace the inode a file watch would follow. Events for the
+/// file's own name count, and so do events for `..data`: a Kubernetes ConfigMap volume exposes
+/// each key as a symlink through `..data`, and updates it by renaming a new `..data` symlink
+/// into place, so the file's own name never sees an event (config/k8s/ relies on this). Events
+/// for other names in the directory are ignored.
 ///
 /// # Errors
 /// When the watch cannot be set up (the directory is gone, or inotify limits are reached).
@@ -364,7 +367,7 @@ pub fn watch(
     let (tx, mut rx) = tokio::sync::mpsc::unbounded_channel();
     let mut watcher = notify::recommended_watcher(move |event: notify::Result<notify::Event>| {
         if let Ok(event) = event {
-            if event.paths.iter().any(|p| p.file_name().map(std::ffi::OsStr::to_os_string) == name) {
+            if event.paths.iter().any(|p| watched_name(p, name.as_deref())) {
                 let _ = tx.send(());
             }
         }
@@ -390,6 +393,12 @@ pub fn watch(
             }
         }
     })))
+}
+
+/// Whether an event on `path` may have changed the config file called `name`.
+fn watched_name(path: &Path, name: Option<&std::ffi::OsStr>) -> bool {
+    let Some(changed) = path.file_name() else { return false };
+    Some(changed) == name || changed == "..data"
 }
 
 /// Reloads on SIGHUP until `shutdown` (Unix only; elsewhere it returns at once).

@@ -229,6 +229,54 @@ async fn invalid_configs_are_refused_on_every_path_and_the_old_one_keeps_serving
     server.stop().await;
 }
 
+/// Waits (bounded) until the live generation reaches `at_least`.
+async fn wait_for_generation(server: &Server, at_least: u64) -> u64 {
+    for _ in 0..250 {
+        let g = generation(server).await;
+        if g >= at_least {
+            return g;
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    generation(server).await
+}
+
+/// A Kubernetes ConfigMap volume, as the kubelet's atomic writer lays it out: each key is a
+/// symlink `key -> ..data/key`, `..data` is a symlink to a timestamped directory, and an update
+/// writes a new directory, points a new `..data_tmp` symlink at it and renames that over
+/// `..data`. The config file's own name sees no event at all (layout as documented for
+/// ConfigMap volumes and the kubelet's `AtomicWriter`; recalled from memory, not copied).
+#[cfg(unix)]
+#[tokio::test]
+async fn a_configmap_style_symlink_swap_is_seen_by_the_watcher() {
+    use std::os::unix::fs::symlink;
+    let server = Server::start_with(CONFIG, Some(TOKEN), false).await;
+    let dir = server.config_path.parent().unwrap().to_path_buf();
+    // Turn the plain file into the ConfigMap layout (itself a rename over the file's name).
+    std::fs::create_dir(dir.join("..2026_12_02_v1")).unwrap();
+    std::fs::write(dir.join("..2026_12_02_v1/medley.toml"), CONFIG).unwrap();
+    symlink("..2026_12_02_v1", dir.join("..data")).unwrap();
+    symlink("..data/medley.toml", dir.join("medley.toml.link")).unwrap();
+    std::fs::rename(dir.join("medley.toml.link"), &server.config_path).unwrap();
+    let g = wait_for_generation(&server, 2).await;
+    assert_eq!(g, 2, "the rename onto the config's name is a reload");
+
+    // The ConfigMap update: only `..data` changes.
+    std::fs::create_dir(dir.join("..2026_12_02_v2")).unwrap();
+    let edited = CONFIG.replacen("lambda = 0.3", "lambda = 0.45", 1);
+    std::fs::write(dir.join("..2026_12_02_v2/medley.toml"), &edited).unwrap();
+    symlink("..2026_12_02_v2", dir.join("..data_tmp")).unwrap();
+    std::fs::rename(dir.join("..data_tmp"), dir.join("..data")).unwrap();
+    std::fs::remove_dir_all(dir.join("..2026_12_02_v1")).unwrap();
+    assert_eq!(wait_for_generation(&server, 3).await, 3, "the ..data swap is a reload");
+    let (status, r) =
+        post_json(&reqwest::Client::new(), &server.url("/v1/rerank"), &json!({"candidates": []})).await;
+    assert_eq!(status, 200);
+    assert_eq!(r["lambda"].as_f64(), Some(0.45));
+    assert_eq!(r["config_generation"], 3);
+    server.stop().await;
+}
+
 #[tokio::test]
 async fn runtime_slices_persist_in_the_overlay_and_say_so() {
     let server = Server::start_with(CONFIG, Some(TOKEN), true).await;
