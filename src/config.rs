@@ -82,6 +82,14 @@ pub struct RawServer {
     pub inline_work_below: Option<u64>,
     /// Shadow jobs waiting for the shadow worker; beyond it new ones are dropped and counted.
     pub shadow_queue: Option<u64>,
+    /// Time a connection has to send a request's headers, counted from when it opens or from
+    /// the end of the previous response: the slow-header limit and the keep-alive idle limit.
+    pub header_timeout_ms: Option<u64>,
+    /// Time a request has to send its whole body once its headers are in (on the stream
+    /// endpoint: the longest gap between body chunks).
+    pub body_timeout_ms: Option<u64>,
+    /// Open connections per listener; beyond it new connections wait in the accept backlog.
+    pub max_connections: Option<u64>,
 }
 
 /// One `[slices.NAME]` table.
@@ -161,6 +169,12 @@ pub struct ServerSettings {
     pub inline_work_below: u64,
     /// Capacity of the shadow queue.
     pub shadow_queue: usize,
+    /// Slow-header and keep-alive idle limit per connection.
+    pub header_timeout: Duration,
+    /// Body read limit per request (per chunk gap on the stream endpoint).
+    pub body_timeout: Duration,
+    /// Open connections per listener.
+    pub max_connections: usize,
 }
 
 /// What one arm serves: every setting resolved (arm, else slice, else default).
@@ -384,6 +398,10 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
         0..=u64::MAX,
     )?;
     let shadow_queue = in_range("server.shadow_queue", raw.shadow_queue, 64, 1..=65_536)?;
+    let header_timeout_ms =
+        in_range("server.header_timeout_ms", raw.header_timeout_ms, 10_000, 10..=3_600_000)?;
+    let body_timeout_ms = in_range("server.body_timeout_ms", raw.body_timeout_ms, 10_000, 10..=3_600_000)?;
+    let max_connections = in_range("server.max_connections", raw.max_connections, 4_096, 1..=1_000_000)?;
     Ok(ServerSettings {
         listen,
         admin_listen,
@@ -399,6 +417,9 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
         stream_in_flight: to_usize(stream_in_flight),
         inline_work_below,
         shadow_queue: to_usize(shadow_queue),
+        header_timeout: Duration::from_millis(header_timeout_ms),
+        body_timeout: Duration::from_millis(body_timeout_ms),
+        max_connections: to_usize(max_connections),
     })
 }
 
@@ -562,14 +583,18 @@ pub fn describe(config: &Config) -> String {
     let _ = writeln!(out, "listen {} (public), {} (private)", s.listen, s.admin_listen);
     let _ = writeln!(
         out,
-        "limits: body {} bytes, {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads",
+        "limits: body {} bytes, {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \
+         header/idle timeout {} ms, body timeout {} ms, {} connections",
         s.max_body_bytes,
         s.limits.max_candidates,
         s.limits.max_dim,
         s.limits.max_k,
         s.request_timeout.as_millis(),
         s.max_in_flight,
-        s.pool_threads
+        s.pool_threads,
+        s.header_timeout.as_millis(),
+        s.body_timeout.as_millis(),
+        s.max_connections
     );
     for slice in config.slices.values() {
         let _ = writeln!(out, "slice {}: locked={}", slice.name, slice.locked);

@@ -158,7 +158,7 @@ async fn serve_main(source: ConfigSource) -> anyhow::Result<()> {
         shutdown::signal().await;
         trigger.fire();
     });
-    serve(public, admin, state, token).await.context("serving")?;
+    serve(public, admin, state, token).await;
     tracing::info!("drained; exiting");
     Ok(())
 }

@@ -231,9 +231,11 @@ impl Reloader {
             || new.admin_listen != fixed.admin_listen
             || new.pool_threads != fixed.pool_threads
             || new.max_in_flight != fixed.max_in_flight
+            || new.header_timeout != fixed.header_timeout
+            || new.max_connections != fixed.max_connections
         {
             tracing::warn!(
-                "listeners, pool_threads and max_in_flight change only on restart; keeping the running ones"
+                "listeners, pool_threads, max_in_flight, header_timeout_ms and max_connections change only on restart; keeping the running ones"
             );
         }
         let generation = old.generation() + 1;

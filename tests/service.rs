@@ -527,7 +527,7 @@ async fn graceful_shutdown_lets_an_in_flight_request_finish() {
     let v: Value = serde_json::from_str(&text).unwrap();
     assert_eq!(v["items"].as_array().unwrap().len(), 10);
     let addr = server.addr;
-    server.join().await.unwrap();
+    server.join().await;
     // The listener is closed: new connections are refused.
     assert!(tokio::net::TcpStream::connect(addr).await.is_err());
 }

@@ -35,6 +35,12 @@ pub enum ApiError {
     /// The body could not be read to its end (400).
     #[error("the request body could not be read: {0}")]
     BodyRead(String),
+    /// The body did not arrive within `body_timeout_ms` (408; the connection is closed).
+    #[error("the request body stalled: body_timeout_ms = {ms} passed (for the whole body, or between two chunks of a stream); the connection is closed")]
+    BodyTimeout {
+        /// The limit.
+        ms: u128,
+    },
     /// No such route (404).
     #[error("no route {method} {path}; see GET /openapi.json for the API")]
     NotFound {
@@ -102,6 +108,7 @@ impl ApiError {
             | Self::BodyRead(_) => StatusCode::BAD_REQUEST,
             Self::Request(_) => StatusCode::UNPROCESSABLE_ENTITY,
             Self::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
+            Self::BodyTimeout { .. } => StatusCode::REQUEST_TIMEOUT,
             Self::UnsupportedMediaType { .. } => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             Self::NotFound { .. } => StatusCode::NOT_FOUND,
             Self::MethodNotAllowed { .. } => StatusCode::METHOD_NOT_ALLOWED,
@@ -124,6 +131,7 @@ impl ApiError {
             Self::PayloadTooLarge { .. } => "body_too_large",
             Self::UnsupportedMediaType { .. } => "unsupported_media_type",
             Self::BodyRead(_) => "body_read_failed",
+            Self::BodyTimeout { .. } => "body_timeout",
             Self::NotFound { .. } => "not_found",
             Self::MethodNotAllowed { .. } => "method_not_allowed",
             Self::Overloaded { .. } => "overloaded",
@@ -169,6 +177,10 @@ impl IntoResponse for ApiError {
             .into_response();
         if status == StatusCode::SERVICE_UNAVAILABLE {
             response.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static(RETRY_AFTER_SECONDS));
+        }
+        if status == StatusCode::REQUEST_TIMEOUT {
+            // The rest of the body may still be on its way; the connection cannot be reused.
+            response.headers_mut().insert(header::CONNECTION, HeaderValue::from_static("close"));
         }
         if status == StatusCode::UNAUTHORIZED {
             response.headers_mut().insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));

@@ -147,7 +147,11 @@ pub(super) async fn rerank(State(state): State<AppState>, request: Request) -> R
     let engine = state.engine.load_full();
     let (parts, body) = request.into_parts();
     check_content_type(&parts.headers, "application/json")?;
-    let bytes = read_body(&parts.headers, body, engine.config().server.max_body_bytes).await?;
+    let server = &engine.config().server;
+    let bytes =
+        tokio::time::timeout(server.body_timeout, read_body(&parts.headers, body, server.max_body_bytes))
+            .await
+            .map_err(|_| ApiError::BodyTimeout { ms: server.body_timeout.as_millis() })??;
     let span = tracing::info_span!(
         "rerank",
         request_id = tracing::field::Empty,
@@ -191,10 +195,17 @@ enum Piece {
     TooLong(u64),
     /// The body failed mid-stream; nothing follows.
     ReadFailed(u64, String),
+    /// No body data for the gap limit; nothing follows.
+    Stalled(u64),
 }
 
-/// Splits a body into lines without holding more than one line (bounded by `max`) in memory.
-fn split_lines(body: Body, max: usize) -> impl futures_util::Stream<Item = Piece> + Send {
+/// Splits a body into lines without holding more than one line (bounded by `max`) in memory,
+/// ending with [`Piece::Stalled`] when no data comes for `gap` while a line is awaited.
+fn split_lines(
+    body: Body,
+    max: usize,
+    gap: std::time::Duration,
+) -> impl futures_util::Stream<Item = Piece> + Send {
     struct St {
         frames: axum::body::BodyDataStream,
         buf: Vec<u8>,
@@ -217,7 +228,11 @@ fn split_lines(body: Body, max: usize) -> impl futures_util::Stream<Item = Piece
             return None;
         }
         let mut out = Vec::new();
-        match st.frames.next().await {
+        let Ok(frame) = tokio::time::timeout(gap, st.frames.next()).await else {
+            st.done = true;
+            return Some((stream::iter(vec![Piece::Stalled(st.line + 1)]), st));
+        };
+        match frame {
             Some(Ok(chunk)) => {
                 let mut rest = &chunk[..];
                 while let Some(pos) = rest.iter().position(|&b| b == b'\n') {
@@ -264,14 +279,15 @@ pub(super) async fn rerank_stream(
     let (parts, body) = request.into_parts();
     check_content_type(&parts.headers, "application/x-ndjson")?;
     let server = &engine.config().server;
-    let (max_line, in_flight) = (server.max_body_bytes, server.stream_in_flight);
-    let lines = split_lines(body, max_line).map(move |piece| {
+    let (max_line, in_flight, gap) = (server.max_body_bytes, server.stream_in_flight, server.body_timeout);
+    let lines = split_lines(body, max_line, gap).map(move |piece| {
         let (state, engine) = (state.clone(), engine.clone());
         async move {
             let outcome = match piece {
                 Piece::Line(n, bytes) => serve_one(&state, engine, bytes).await.map_err(|e| (n, e)),
                 Piece::TooLong(n) => Err((n, ApiError::PayloadTooLarge { limit: max_line })),
                 Piece::ReadFailed(n, message) => Err((n, ApiError::BodyRead(message))),
+                Piece::Stalled(n) => Err((n, ApiError::BodyTimeout { ms: gap.as_millis() })),
             };
             let mut line = match outcome {
                 Ok(served) => {

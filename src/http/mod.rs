@@ -7,6 +7,7 @@
 //! `Retry-After`). Health, readiness and metrics are never shed.
 
 mod admin;
+pub mod conn;
 mod error;
 mod handlers;
 
@@ -198,16 +199,9 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
 }
 
 /// Serves the public and the private router until `shutdown` starts, then stops accepting,
-/// lets in-flight requests (and open streams) finish, and returns.
-///
-/// # Errors
-/// An I/O error from either listener's accept loop.
-pub async fn serve(
-    public: TcpListener,
-    admin: TcpListener,
-    state: AppState,
-    shutdown: Shutdown,
-) -> std::io::Result<()> {
+/// lets in-flight requests (and open streams) finish, and returns. Accept errors are logged and
+/// retried (see [`conn`]), so it returns only through shutdown.
+pub async fn serve(public: TcpListener, admin: TcpListener, state: AppState, shutdown: Shutdown) {
     let draining = state.draining.clone();
     let mark = shutdown.clone();
     tokio::spawn(async move {
@@ -223,14 +217,19 @@ pub async fn serve(
     };
     let sighup = tokio::spawn(crate::reload::on_sighup(state.reloader.clone(), shutdown.clone()));
     let shadow = state.shadow.clone();
-    let public = axum::serve(public, app(state.clone())).with_graceful_shutdown(shutdown.clone().started());
-    let admin = axum::serve(admin, admin_app(state)).with_graceful_shutdown(shutdown.started());
-    let (a, b) = tokio::join!(async { public.await }, async { admin.await });
+    let limits = {
+        let engine = state.engine.load();
+        let server = &engine.config().server;
+        conn::ConnLimits { header_timeout: server.header_timeout, max_connections: server.max_connections }
+    };
+    tokio::join!(
+        conn::serve_listener(public, app(state.clone()), limits, shutdown.clone()),
+        conn::serve_listener(admin, admin_app(state.clone()), limits, shutdown.clone()),
+    );
     // Background work holds the shutdown token; wait for it, then drain the shadow queue.
     if let Some(w) = watcher {
         let _ = w.await;
     }
     let _ = sighup.await;
     let _ = tokio::task::spawn_blocking(move || shadow.stop()).await;
-    a.and(b)
 }

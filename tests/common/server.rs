@@ -21,7 +21,7 @@ pub struct Server {
     pub config_path: std::path::PathBuf,
     pub state: AppState,
     trigger: Option<Trigger>,
-    task: Option<tokio::task::JoinHandle<std::io::Result<()>>>,
+    task: Option<tokio::task::JoinHandle<()>>,
 }
 
 impl Server {
@@ -86,14 +86,13 @@ impl Server {
         tokio::time::timeout(std::time::Duration::from_secs(20), task)
             .await
             .expect("server drains within 20 s")
-            .unwrap()
             .unwrap();
     }
 
     /// Waits for a server whose shutdown was already fired.
-    pub async fn join(mut self) -> std::io::Result<()> {
+    pub async fn join(mut self) {
         let task = self.task.take().unwrap();
-        tokio::time::timeout(std::time::Duration::from_secs(20), task).await.expect("drains").unwrap()
+        tokio::time::timeout(std::time::Duration::from_secs(20), task).await.expect("drains").unwrap();
     }
 
     pub fn url(&self, path: &str) -> String {
