@@ -13,7 +13,7 @@ use std::sync::Arc;
 use crate::config::{Config, Shadow, DEFAULT_SLICE};
 use crate::diversify::{self, Diversifier, KernelError, Workspace};
 use crate::measures;
-use crate::model::{CandidateInput, Field, Params, RerankInput, Selection, ValidationError};
+use crate::model::{CandidateInput, Field, Params, RerankInput, Selection, ValidationError, MAX_LABEL_BYTES};
 use crate::wire::{decode_b64_embedding, Diversity, Item, RerankRequest, RerankResponse};
 
 /// Why one request cannot be served. Codes are part of the wire contract.
@@ -100,6 +100,7 @@ impl RequestError {
             Self::ConflictingEmbedding { .. } => "conflicting_embedding",
             Self::Invalid { error, .. } => match error {
                 ValidationError::TooManyCandidates { .. } => "too_many_candidates",
+                ValidationError::TooLong { .. } => "too_long",
                 ValidationError::DuplicateId { .. } => "duplicate_id",
                 ValidationError::NonFinite { .. } => "non_finite",
                 ValidationError::MissingEmbedding { .. } => "missing_embedding",
@@ -130,6 +131,9 @@ impl RequestError {
             Self::Invalid { error, b64 } => match *error {
                 ValidationError::TooManyCandidates { .. } => Some("candidates".into()),
                 ValidationError::DuplicateId { index, .. } => Some(format!("candidates[{index}].id")),
+                ValidationError::TooLong { index, field, .. } => {
+                    Some(format!("candidates[{index}].{}", field.name()))
+                }
                 ValidationError::NonFinite { index, field: Field::Embedding } => embedding(index, *b64),
                 ValidationError::NonFinite { index, field } => {
                     Some(format!("candidates[{index}].{}", field.name()))
@@ -185,6 +189,16 @@ impl Engine {
     /// # Errors
     /// A [`RequestError`] naming the field at fault.
     pub fn prepare(&self, request: RerankRequest) -> Result<Prepared, RequestError> {
+        for (path, label) in
+            [("request_id", &request.request_id), ("unit_id", &request.unit_id), ("slice", &request.slice)]
+        {
+            if let Some(got) = label.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
+                return Err(RequestError::InvalidField {
+                    message: format!("{path} is {got} bytes; the limit is {MAX_LABEL_BYTES}"),
+                    path: Some(path.to_owned()),
+                });
+            }
+        }
         let slice_name = request.slice.as_deref().unwrap_or(DEFAULT_SLICE);
         let slice = self.config.slice(slice_name).ok_or_else(|| RequestError::UnknownSlice {
             name: slice_name.to_owned(),
@@ -274,6 +288,7 @@ fn sampled(rate: f64) -> bool {
 fn error_index(e: &ValidationError) -> Option<usize> {
     match *e {
         ValidationError::DuplicateId { index, .. }
+        | ValidationError::TooLong { index, .. }
         | ValidationError::NonFinite { index, .. }
         | ValidationError::MissingEmbedding { index, .. }
         | ValidationError::DimensionMismatch { index, .. }

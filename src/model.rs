@@ -9,6 +9,11 @@
 
 use std::collections::HashMap;
 
+/// Longest id, category (and, at the HTTP edge, `request_id`, `unit_id` and `slice`) in bytes.
+/// Labels are echoed into responses, logs and metrics, so an unbounded one would let one caller
+/// inflate all three; 1 KiB is far above any real item key.
+pub const MAX_LABEL_BYTES: usize = 1024;
+
 /// Hard limits on one slate, enforced by [`RerankInput::new`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Limits {
@@ -79,6 +84,8 @@ pub enum Field {
     Score,
     /// `embedding` (or its base64 form)
     Embedding,
+    /// `category`
+    Category,
 }
 
 impl Field {
@@ -89,6 +96,7 @@ impl Field {
             Self::Id => "id",
             Self::Score => "score",
             Self::Embedding => "embedding",
+            Self::Category => "category",
         }
     }
 }
@@ -96,6 +104,18 @@ impl Field {
 /// Why a slate or its parameters were refused.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum ValidationError {
+    /// An id or category longer than [`MAX_LABEL_BYTES`].
+    #[error("candidate {index} has a {} of {got} bytes; the limit is {max}", field.name())]
+    TooLong {
+        /// Candidate index.
+        index: usize,
+        /// `id` or `category`.
+        field: Field,
+        /// Its length in bytes.
+        got: usize,
+        /// The limit.
+        max: usize,
+    },
     /// More candidates than [`Limits::max_candidates`].
     #[error("{got} candidates exceed the limit of {max}")]
     TooManyCandidates {
@@ -248,8 +268,9 @@ impl RerankInput {
     /// `require_embeddings` is set by callers whose algorithm needs embeddings (MMR, DPP).
     ///
     /// # Errors
-    /// [`ValidationError::TooManyCandidates`] first, then the first repeated id
-    /// ([`ValidationError::DuplicateId`]), then the first other error scanning candidates in order.
+    /// [`ValidationError::TooManyCandidates`] first, then the first over-long
+    /// ([`ValidationError::TooLong`]) or repeated ([`ValidationError::DuplicateId`]) id, then the
+    /// first other error scanning candidates in order.
     ///
     /// # Complexity
     /// O(N·d) time. Allocates the slate's own arrays plus one id index for the duplicate check;
@@ -286,6 +307,15 @@ impl RerankInput {
         {
             let mut first_index: HashMap<&str, usize> = HashMap::with_capacity(n);
             for (index, c) in candidates.iter().enumerate() {
+                if c.id.len() > MAX_LABEL_BYTES {
+                    let got = c.id.len();
+                    return Err(ValidationError::TooLong {
+                        index,
+                        field: Field::Id,
+                        got,
+                        max: MAX_LABEL_BYTES,
+                    });
+                }
                 if let Some(&first) = first_index.get(c.id.as_str()) {
                     return Err(ValidationError::DuplicateId { id: c.id.clone(), first, index });
                 }
@@ -303,6 +333,14 @@ impl RerankInput {
         for (index, c) in candidates.into_iter().enumerate() {
             if !c.score.is_finite() {
                 return Err(ValidationError::NonFinite { index, field: Field::Score });
+            }
+            if let Some(got) = c.category.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
+                return Err(ValidationError::TooLong {
+                    index,
+                    field: Field::Category,
+                    got,
+                    max: MAX_LABEL_BYTES,
+                });
             }
             match (any_embedding, c.embedding) {
                 (false, _) => {}

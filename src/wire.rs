@@ -158,6 +158,17 @@ impl ErrorBody {
 /// [`RequestError::MalformedJson`] for text that is not JSON, [`RequestError::InvalidField`]
 /// (with the field's path) for JSON of the wrong shape.
 pub fn decode_request(bytes: &[u8]) -> Result<RerankRequest, RequestError> {
+    // serde's derived structs also accept a JSON array of the fields in order; a request is an
+    // object, so any other well-formed JSON is refused before decoding (skipping it with
+    // IgnoredAny is iterative, so even deep nesting costs no stack).
+    if bytes.iter().find(|b| !b.is_ascii_whitespace()).is_some_and(|&b| b != b'{')
+        && serde_json::from_slice::<serde::de::IgnoredAny>(bytes).is_ok()
+    {
+        return Err(RequestError::InvalidField {
+            message: "a request is a JSON object: {\"candidates\": [...], ...}".to_owned(),
+            path: None,
+        });
+    }
     decode_json(bytes)
 }
 
