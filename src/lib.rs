@@ -14,6 +14,8 @@
 //! - [`batch`]: JSONL in, JSONL out, on every core; [`cli`]: the command-line types.
 //! - [`sample`]: the demo corpus (an invented outdoor-gear shop); [`replay`] and
 //!   [`replay_plot`]: the offline accuracy–diversity frontier.
+//! - [`fuzz`]: the invariant checks the fuzz targets in `fuzz/` drive, replayed over their
+//!   committed corpus by `tests/fuzz_corpus.rs`.
 //!
 //! # One request
 //! `POST /v1/rerank` reaches [`http`], whose middleware counts it and takes a concurrency permit
@@ -63,6 +65,7 @@ pub mod cli;
 pub mod config;
 pub mod diversify;
 pub mod engine;
+pub mod fuzz;
 pub mod http;
 pub mod measures;
 pub mod metrics;

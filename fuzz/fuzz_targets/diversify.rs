@@ -1,0 +1,4 @@
+//! Arbitrary validated slates through every registered diversifier.
+#![no_main]
+
+libfuzzer_sys::fuzz_target!(|data: &[u8]| medley::fuzz::diversifiers(data));
