@@ -261,12 +261,15 @@ impl Slice {
 /// so the high bits are well mixed. The README has a five-line Python version.
 #[must_use]
 pub fn arm_hash(slice: &str, unit_id: &str) -> u64 {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in slice.as_bytes().iter().chain(&[0u8]).chain(unit_id.as_bytes()) {
-        h ^= u64::from(b);
-        h = h.wrapping_mul(0x0000_0100_0000_01b3);
-    }
-    mix64(h)
+    mix64(fnv1a64(slice.as_bytes().iter().chain(&[0u8]).chain(unit_id.as_bytes())))
+}
+
+/// FNV-1a 64 (Fowler, Noll & Vo): offset basis 0xcbf29ce484222325, prime 0x100000001b3.
+#[must_use]
+pub fn fnv1a64<'a>(bytes: impl IntoIterator<Item = &'a u8>) -> u64 {
+    bytes
+        .into_iter()
+        .fold(0xcbf2_9ce4_8422_2325, |h: u64, &b| (h ^ u64::from(b)).wrapping_mul(0x0000_0100_0000_01b3))
 }
 
 /// The SplitMix64 finaliser (Steele, Lea & Flood, OOPSLA 2014): a bijection of u64 whose output
@@ -303,6 +306,16 @@ pub const SLICE_DEFAULT_ALGORITHM: &str = "relevance";
 pub const SLICE_DEFAULT_K: u64 = 10;
 
 impl Config {
+    /// A fingerprint of what this config serves: FNV-1a 64 of the validated document (file and
+    /// runtime slices, re-serialised canonically, so comments and key order do not count), as
+    /// 16 hex digits. Replicas serving the same config report the same digest; the listener
+    /// flags are not part of it.
+    #[must_use]
+    pub fn digest(&self) -> String {
+        let canonical = toml::to_string(&self.raw).unwrap_or_default();
+        format!("{:016x}", fnv1a64(canonical.as_bytes()))
+    }
+
     /// Parses and validates a TOML document.
     ///
     /// # Errors

@@ -160,13 +160,21 @@ impl RequestError {
 pub struct Engine {
     config: Config,
     generation: u64,
+    digest: String,
 }
 
 impl Engine {
     /// Wraps a validated config.
     #[must_use]
     pub fn new(config: Config, generation: u64) -> Self {
-        Self { config, generation }
+        let digest = config.digest();
+        Self { config, generation, digest }
+    }
+
+    /// [`Config::digest`] of the config served: equal across replicas that serve the same one.
+    #[must_use]
+    pub fn digest(&self) -> &str {
+        &self.digest
     }
 
     /// The config served.

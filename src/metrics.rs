@@ -6,8 +6,8 @@
 //! (DPP on 5 000 candidates), and the request deadline defaults to 1 s.
 
 use prometheus::{
-    Encoder, GaugeVec, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge, Opts, Registry,
-    TextEncoder,
+    Encoder, GaugeVec, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge, IntGaugeVec, Opts,
+    Registry, TextEncoder,
 };
 
 /// Buckets of `medley_rerank_duration_seconds`, 50 µs to 1 s, about ×2 apart.
@@ -45,6 +45,8 @@ pub struct Metrics {
     pub in_flight: IntGauge,
     /// `medley_config_generation`: generation of the config being served.
     pub config_generation: IntGauge,
+    /// `medley_config_info{digest}`: 1 for the digest of the config being served (one series).
+    pub config_info: IntGaugeVec,
     /// `medley_stream_lines_total{outcome}`: stream and batch lines, `ok` or `error`.
     pub stream_lines: IntCounterVec,
     /// `medley_pool_threads`: kernel pool size.
@@ -137,6 +139,13 @@ impl Metrics {
         let in_flight = must(IntGauge::new("medley_in_flight_requests", "Requests being processed."));
         let config_generation =
             must(IntGauge::new("medley_config_generation", "Generation of the configuration being served."));
+        let config_info = must(IntGaugeVec::new(
+            Opts::new(
+                "medley_config_info",
+                "1 for the digest of the configuration being served (FNV-1a 64 of the validated config); equal across replicas that serve the same config.",
+            ),
+            &["digest"],
+        ));
         let stream_lines = must(IntCounterVec::new(
             Opts::new(
                 "medley_stream_lines_total",
@@ -209,6 +218,7 @@ impl Metrics {
         reg(Box::new(shed.clone()));
         reg(Box::new(in_flight.clone()));
         reg(Box::new(config_generation.clone()));
+        reg(Box::new(config_info.clone()));
         reg(Box::new(stream_lines.clone()));
         reg(Box::new(pool_threads.clone()));
         reg(Box::new(config_reloads.clone()));
@@ -233,6 +243,7 @@ impl Metrics {
             shed,
             in_flight,
             config_generation,
+            config_info,
             stream_lines,
             pool_threads,
             config_reloads,
@@ -283,6 +294,14 @@ impl Metrics {
             self.last_ild.with_label_values(&labels).set(ild);
         }
         self.candidates.with_label_values(&[slice]).observe(n as f64);
+    }
+
+    /// Records the config now served: its generation, and its digest as the one
+    /// `medley_config_info` series.
+    pub fn set_config(&self, generation: u64, digest: &str) {
+        self.config_generation.set(i64::try_from(generation).unwrap_or(i64::MAX));
+        self.config_info.reset();
+        self.config_info.with_label_values(&[digest]).set(1);
     }
 
     /// The Prometheus text exposition (format 0.0.4).

@@ -239,8 +239,9 @@ impl Reloader {
             );
         }
         let generation = old.generation() + 1;
-        self.engine.store(Arc::new(Engine::new(config, generation)));
-        self.metrics.config_generation.set(i64::try_from(generation).unwrap_or(i64::MAX));
+        let engine = Arc::new(Engine::new(config, generation));
+        self.metrics.set_config(generation, engine.digest());
+        self.engine.store(engine);
         self.metrics.config_reloads.with_label_values(&[trigger.label()]).inc();
         tracing::info!(generation, trigger = trigger.label(), "config swapped");
         generation

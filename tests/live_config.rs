@@ -229,6 +229,49 @@ async fn invalid_configs_are_refused_on_every_path_and_the_old_one_keeps_serving
     server.stop().await;
 }
 
+/// The digest from `/readyz`, checked against `GET /admin/config` and `medley_config_info`.
+async fn digest(server: &Server) -> String {
+    let ready: Value = reqwest::get(format!("{}/readyz", server.admin)).await.unwrap().json().await.unwrap();
+    let d = ready["config_digest"].as_str().unwrap().to_owned();
+    assert!(d.len() == 16 && d.bytes().all(|b| b.is_ascii_hexdigit()), "{d}");
+    assert_eq!(admin_config(server).await["config_digest"], d.as_str());
+    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
+    let series: Vec<&str> = text.lines().filter(|l| l.starts_with("medley_config_info{")).collect();
+    assert_eq!(series, [format!("medley_config_info{{digest=\"{d}\"}} 1")], "one series, the live digest");
+    d
+}
+
+/// Two replicas of the same config report one digest (comments and key order aside); a runtime
+/// slice changes one replica's digest only, and deleting it brings the first digest back.
+#[tokio::test]
+async fn the_config_digest_names_the_config_not_the_replica() {
+    let a = Server::start_with(CONFIG, Some(TOKEN), false).await;
+    let reordered = format!(
+        "# the other replica's copy\n{}\n{}",
+        &CONFIG[CONFIG.find("[slices.plain]").unwrap()..],
+        &CONFIG[..CONFIG.find("[slices.plain]").unwrap()]
+    );
+    let b = Server::start_with(&reordered, Some(TOKEN), false).await;
+    let first = digest(&a).await;
+    assert_eq!(digest(&b).await, first);
+
+    let r = admin(&a, reqwest::Method::PUT, "/admin/slices/email", Some(TOKEN))
+        .json(&json!({"algorithm": "mmr", "lambda": 0.4, "k": 8}))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(r.status(), 200);
+    let changed = digest(&a).await;
+    assert_ne!(changed, first);
+    assert_eq!(digest(&b).await, first, "a runtime slice changes one replica only");
+    let r = admin(&a, reqwest::Method::DELETE, "/admin/slices/email", Some(TOKEN)).send().await.unwrap();
+    assert_eq!(r.status(), 200);
+    assert_eq!(digest(&a).await, first, "the same config again, the same digest");
+    assert_eq!(generation(&a).await, 3, "while the generation counts swaps");
+    a.stop().await;
+    b.stop().await;
+}
+
 /// Waits (bounded) until the live generation reaches `at_least`.
 async fn wait_for_generation(server: &Server, at_least: u64) -> u64 {
     for _ in 0..250 {

@@ -79,6 +79,7 @@ async fn config(State(state): State<AppState>) -> Response {
     let source = state.reloader.source();
     json(&serde_json::json!({
         "config_generation": engine.generation(),
+        "config_digest": engine.digest(),
         "source": source.describe(),
         "overlay": source.overlay.as_ref().map(|p| p.display().to_string()),
         "runtime_slices": state.reloader.runtime_slices(),

@@ -324,11 +324,13 @@ pub(super) async fn healthz() -> Response {
 
 /// `GET /readyz`: a config is loaded and the pool is up; 503 once shutdown has started.
 pub(super) async fn readyz(State(state): State<AppState>) -> Response {
-    let generation = state.engine.load().generation();
+    let engine = state.engine.load();
+    let generation = engine.generation();
     let status = if state.is_draining() { "draining" } else { "ready" };
     let body = serde_json::json!({
         "status": status,
         "config_generation": generation,
+        "config_digest": engine.digest(),
         "pool_threads": state.pool.threads(),
     });
     let code = if state.is_draining() { StatusCode::SERVICE_UNAVAILABLE } else { StatusCode::OK };

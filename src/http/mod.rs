@@ -91,9 +91,10 @@ impl AppState {
         let pool = Pool::new(server.pool_threads, server.inline_work_below)?;
         let shadow = ShadowRunner::start(server.shadow_queue, metrics.clone())?;
         let max_in_flight = server.max_in_flight;
-        let engine = Arc::new(ArcSwap::from_pointee(Engine::new(config, 1)));
+        let first = Engine::new(config, 1);
+        metrics.set_config(1, first.digest());
+        let engine = Arc::new(ArcSwap::from_pointee(first));
         metrics.pool_threads.set(pool.threads() as i64);
-        metrics.config_generation.set(1);
         let reloader = Arc::new(Reloader::new(source, engine.clone(), metrics.clone(), file, runtime));
         Ok(Self {
             engine,
