@@ -7,6 +7,9 @@
 #   loadtest/run.sh                    # the table (about 2 minutes after the build)
 #   loadtest/run.sh --soak 10          # then 10 minutes at half the saturation rate:
 #                                      # fails unless errors stay 0 and RSS stays flat
+#   loadtest/run.sh --overload         # then 2x saturation on 256 connections (past
+#                                      # max_in_flight = 64): shed rate, p99 of the accepted
+#                                      # requests, and the half-rate step again right after
 #   N=500 D=64 K=50 ALGO=mmr loadtest/run.sh --duration 5
 #
 # Defaults: N=200 candidates, D=64 dims, K=20, ALGO=dpp, LAMBDA=0.5; embeddings sent as
@@ -18,11 +21,13 @@ cd "$(dirname "$0")/.."
 
 duration=10
 soak=0
+overload=0
 while [ $# -gt 0 ]; do
   case "$1" in
     --duration) duration="$2"; shift 2 ;;
     --soak) soak="$2"; shift 2 ;;
-    -h|--help) sed -n '2,16p' "$0"; exit 0 ;;
+    --overload) overload=1; shift ;;
+    -h|--help) sed -n '2,19p' "$0"; exit 0 ;;
     *) echo "unknown argument $1 (see --help)" >&2; exit 2 ;;
   esac
 done
@@ -45,7 +50,9 @@ cat > "$work/medley.toml" <<EOF
 [server]
 listen = "127.0.0.1:0"
 admin_listen = "127.0.0.1:0"
-max_in_flight = 1024
+# About 10 ms of work at this box's saturation rate (Little's law: 5 000 req/s x 12 ms); past it
+# medley sheds with 503 instead of queueing.
+max_in_flight = 64
 
 [slices.default]
 algorithm = "$ALGO"
@@ -104,6 +111,26 @@ for pct in 25 50 75 90; do
   drive "$duration" "$work/q$pct.json" -q "$rate" --latency-correction
   row "${pct}% of saturation" "$rate" "$work/q$pct.json"
 done
+if [ "$overload" -eq 1 ]; then
+  rate=$(( sat * 2 ))
+  CONNS=256 drive "$duration" "$work/over.json" -q "$rate" --latency-correction --stats-success-breakdown
+  python3 - "$rate" "$work/over.json" "$(rss_kib)" <<'PY'
+import json, sys
+rate, path, rss = int(sys.argv[1]), sys.argv[2], int(sys.argv[3])
+r = json.load(open(path))
+codes = r.get("statusCodeDistribution", {})
+total = sum(codes.values())
+ok, shed = codes.get("200", 0), codes.get("503", 0)
+other = total - ok - shed + sum(r.get("errorDistribution", {}).values())
+p = r.get("latencyPercentilesSuccessful") or {}
+ms = lambda k: f"{1000 * (p.get(k) or 0):.2f}"
+print(f"| 2x saturation, 256 connections (accepted only) | {rate} | {ok / r['summary']['total']:.0f} | {ms('p50')} | {ms('p95')} | {ms('p99')} | {other} | {rss / 1024:.0f} |")
+print(f"overload: {total} answered, {ok} served (200), {shed} shed (503, {100 * shed / max(total, 1):.1f}%), {other} other errors", file=sys.stderr)
+PY
+  rate=$(( sat / 2 ))
+  drive "$duration" "$work/after.json" -q "$rate" --latency-correction
+  row "50% again, right after the overload" "$rate" "$work/after.json"
+fi
 rss_after="$(rss_kib)"
 echo
 echo "server RSS: $(( rss_before / 1024 )) MiB before, $(( rss_after / 1024 )) MiB after"

@@ -862,3 +862,66 @@ mod properties {
         });
     }
 }
+
+/// Overload, bounded: 160 heavy requests at once against `max_in_flight = 4` on one pool
+/// thread. The excess is shed with 503 `overloaded` and `Retry-After` (counted in
+/// `medley_shed_total`), everything admitted is served, and the moment the burst is over every
+/// request is served again. (Latency under overload is measured by `loadtest/run.sh --overload`,
+/// not here.)
+#[tokio::test]
+async fn overload_is_shed_and_the_server_recovers_at_once() {
+    let config = "[server]\nmax_in_flight = 4\npool_threads = 1\ninline_work_below = 0\n\n[slices.default]\nalgorithm = \"dpp\"\nlambda = 0.5\nk = 40\n";
+    let server = Server::start(config).await;
+    let body = serde_json::to_vec(&common::server::request(&mut Rng(42), 600, 48, 6)).unwrap();
+    let client = reqwest::Client::new();
+    let url = server.url("/v1/rerank");
+    let burst: Vec<_> = (0..160)
+        .map(|_| {
+            let (client, url, body) = (client.clone(), url.clone(), body.clone());
+            tokio::spawn(async move {
+                let r = client
+                    .post(&url)
+                    .header("content-type", "application/json")
+                    .body(body)
+                    .send()
+                    .await
+                    .unwrap();
+                let status = r.status().as_u16();
+                let retry = r.headers().get("retry-after").map(|v| v.to_str().unwrap().to_owned());
+                let v: Value = r.json().await.unwrap();
+                (status, retry, v)
+            })
+        })
+        .collect();
+    let (mut served, mut shed) = (0, 0);
+    for task in burst {
+        let (status, retry, v) = task.await.unwrap();
+        match status {
+            200 => served += 1,
+            503 => {
+                assert_eq!(v["error"]["code"], "overloaded", "{v}");
+                assert_eq!(retry.as_deref(), Some("1"));
+                shed += 1;
+            }
+            other => panic!("status {other}: {v}"),
+        }
+    }
+    assert!(shed > 0 && served >= 4, "served {served}, shed {shed}");
+    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
+    let counted: u32 =
+        text.lines().find_map(|l| l.strip_prefix("medley_shed_total ")).unwrap().trim().parse().unwrap();
+    assert_eq!(counted, shed);
+    // Recovery: the next requests, one at a time, are all served.
+    for _ in 0..8 {
+        let r = client
+            .post(&url)
+            .header("content-type", "application/json")
+            .body(body.clone())
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(r.status(), 200);
+    }
+    println!("overload burst: {served} served, {shed} shed");
+    server.stop().await;
+}
