@@ -126,6 +126,8 @@ p = r.get("latencyPercentilesSuccessful") or {}
 ms = lambda k: f"{1000 * (p.get(k) or 0):.2f}"
 print(f"| 2x saturation, 256 connections (accepted only) | {rate} | {ok / r['summary']['total']:.0f} | {ms('p50')} | {ms('p95')} | {ms('p99')} | {other} | {rss / 1024:.0f} |")
 print(f"overload: {total} answered, {ok} served (200), {shed} shed (503, {100 * shed / max(total, 1):.1f}%), {other} other errors", file=sys.stderr)
+if other:
+    print(f"other errors: codes {codes}, {r.get('errorDistribution')}", file=sys.stderr)
 PY
   rate=$(( sat / 2 ))
   drive "$duration" "$work/after.json" -q "$rate" --latency-correction

@@ -925,3 +925,64 @@ async fn overload_is_shed_and_the_server_recovers_at_once() {
     println!("overload burst: {served} served, {shed} shed");
     server.stop().await;
 }
+
+/// A shed request's small body is read and dropped, so its keep-alive connection serves the next
+/// request; a large or chunked one is left unread and the answer carries `Connection: close`.
+#[tokio::test]
+async fn a_shed_request_leaves_its_connection_reusable() {
+    let server =
+        Server::start("[server]\nmax_in_flight = 1\n\n[slices.default]\nalgorithm = \"relevance\"\n").await;
+    // An open stream holds the only permit.
+    let mut holder = TcpStream::connect(server.addr).await.unwrap();
+    holder
+        .write_all(
+            b"POST /v1/rerank/stream HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/x-ndjson\r\nTransfer-Encoding: chunked\r\n\r\n",
+        )
+        .await
+        .unwrap();
+    let metrics = format!("{}/metrics", server.admin);
+    for _ in 0..200 {
+        let text = reqwest::get(&metrics).await.unwrap().text().await.unwrap();
+        if text.lines().any(|l| l == "medley_in_flight_requests 1") {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    let body = br#"{"candidates":[{"id":"a","score":1}]}"#;
+    let mut s = TcpStream::connect(server.addr).await.unwrap();
+    let mut buf = Vec::new();
+    let request = format!(
+        "POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nContent-Length: {}\r\n\r\n",
+        body.len()
+    );
+    s.write_all(request.as_bytes()).await.unwrap();
+    s.write_all(body).await.unwrap();
+    let r = read_reply(&mut s, &mut buf).await.unwrap();
+    assert_eq!((r.status, r.code().as_str()), (503, "overloaded"));
+    assert_eq!(r.header("connection"), None, "the drained connection stays open");
+    s.write_all(b"GET /healthz HTTP/1.1\r\nHost: medley.test\r\n\r\n").await.unwrap();
+    assert_eq!(read_reply(&mut s, &mut buf).await.map(|r| r.status), Some(200), "reused after a shed answer");
+
+    // A body over 64 KiB, or a chunked one, is not read: the answer says the connection closes,
+    // so a client does not send its next request into a socket about to be shut.
+    let big = vec![b' '; 200 << 10];
+    let mut c = TcpStream::connect(server.addr).await.unwrap();
+    let head = format!(
+        "POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nContent-Length: {}\r\n\r\n",
+        big.len()
+    );
+    c.write_all(head.as_bytes()).await.unwrap();
+    let _ = c.write_all(&big).await;
+    let r = read_reply(&mut c, &mut Vec::new()).await.unwrap();
+    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "large body");
+    let mut c = TcpStream::connect(server.addr).await.unwrap();
+    c.write_all(
+        b"POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nTransfer-Encoding: chunked\r\n\r\n2\r\n{}\r\n",
+    )
+    .await
+    .unwrap();
+    let r = read_reply(&mut c, &mut Vec::new()).await.unwrap();
+    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "chunked body");
+    drop(holder);
+    server.stop().await;
+}

@@ -16,6 +16,7 @@ use std::sync::Arc;
 
 use arc_swap::ArcSwap;
 use axum::extract::{Request, State};
+use axum::http::{header, HeaderValue};
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -191,12 +192,42 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
     }
     let Ok(permit) = state.permits.clone().try_acquire_owned() else {
         state.metrics.shed.inc();
-        return ApiError::Overloaded { limit: state.max_in_flight }.into_response();
+        let mut response = ApiError::Overloaded { limit: state.max_in_flight }.into_response();
+        if !drain_small_body(request).await {
+            response.headers_mut().insert(header::CONNECTION, HeaderValue::from_static("close"));
+        }
+        return response;
     };
     state.metrics.in_flight.inc();
     let admitted = Arc::new(Admitted { _permit: permit, metrics: state.metrics.clone() });
     request.extensions_mut().insert(admitted);
     next.run(request).await
+}
+
+/// Bodies up to this size are read and dropped when a request is shed, so its connection stays
+/// reusable; larger or chunked ones get `Connection: close` instead.
+const SHED_DRAIN_MAX: u64 = 64 << 10;
+
+/// Reads and drops a small body (bounded in size and time); false when the connection cannot be
+/// reused. Without it hyper closes a connection whose request body was left unread, and a client
+/// that sends its next request on it sees the connection drop mid-request: under overload that
+/// turns every shed answer into a reconnect.
+async fn drain_small_body(request: Request) -> bool {
+    let declared = request
+        .headers()
+        .get(header::CONTENT_LENGTH)
+        .and_then(|v| v.to_str().ok())
+        .and_then(|v| v.parse::<u64>().ok());
+    match declared {
+        Some(0) => true,
+        Some(n) if n <= SHED_DRAIN_MAX => {
+            let read = axum::body::to_bytes(request.into_body(), SHED_DRAIN_MAX as usize);
+            matches!(tokio::time::timeout(std::time::Duration::from_millis(100), read).await, Ok(Ok(_)))
+        }
+        // No Content-Length: a GET-like request with no body, or a chunked one.
+        None => !request.headers().contains_key(header::TRANSFER_ENCODING),
+        Some(_) => false,
+    }
 }
 
 /// Serves the public and the private router until `shutdown` starts, then stops accepting,
