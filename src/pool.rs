@@ -9,6 +9,8 @@
 
 use std::cell::RefCell;
 use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
 
 use crate::diversify::Workspace;
 
@@ -77,17 +79,40 @@ impl Pool {
             return run_here(job);
         }
         let (tx, rx) = tokio::sync::oneshot::channel();
+        // When this future is dropped unfinished (the deadline passed, the client went away),
+        // the guard raises the flag and the kernel stops at its next step.
+        let cancel = CancelOnDrop(Arc::new(AtomicBool::new(false)));
+        let flag = cancel.0.clone();
         self.threads.spawn(move || {
-            // The receiver may be gone (deadline passed); nothing to do then.
-            let _ = tx.send(run_here(job));
+            if flag.load(Ordering::Relaxed) {
+                return; // abandoned while queued
+            }
+            let result = run_here(|ws| {
+                ws.set_cancel(Some(flag));
+                job(ws)
+            });
+            // The receiver may be gone; nothing to do then.
+            let _ = tx.send(result);
         });
-        rx.await.unwrap_or_else(|_| Err(PoolError::Panicked("the pool dropped the job".into())))
+        let result = rx.await.unwrap_or_else(|_| Err(PoolError::Panicked("the pool dropped the job".into())));
+        // Raising the flag now, with the job done, changes nothing.
+        drop(cancel);
+        result
     }
 
     /// Runs `f` on the pool and blocks the calling (non-async) thread until it returns; for the
     /// batch subcommand, which parallelises with rayon inside `f`.
     pub fn install<R: Send>(&self, f: impl FnOnce() -> R + Send) -> R {
         self.threads.install(f)
+    }
+}
+
+/// Raises its flag when dropped: held by the future that waits for a pool job.
+struct CancelOnDrop(Arc<AtomicBool>);
+
+impl Drop for CancelOnDrop {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::Relaxed);
     }
 }
 
@@ -98,7 +123,11 @@ impl Pool {
 pub fn run_here<R>(job: impl FnOnce(&mut Workspace) -> R) -> Result<R, PoolError> {
     catch_unwind(AssertUnwindSafe(|| {
         WORKSPACE.with(|ws| match ws.try_borrow_mut() {
-            Ok(mut ws) => job(&mut ws),
+            Ok(mut ws) => {
+                // No flag from an earlier job (one that panicked, say) carries over.
+                ws.set_cancel(None);
+                job(&mut ws)
+            }
             // Re-entrant use (a job calling run_here) gets a fresh workspace.
             Err(_) => job(&mut Workspace::new()),
         })

@@ -986,3 +986,27 @@ async fn a_shed_request_leaves_its_connection_reusable() {
     drop(holder);
     server.stop().await;
 }
+
+/// A request past its deadline stops its kernel: on a one-thread pool, a small request right
+/// behind a heavy one that timed out is served within its own deadline, which it could not be
+/// if the heavy kernel ran on to its end (several seconds here).
+#[tokio::test]
+async fn a_request_past_its_deadline_stops_its_kernel() {
+    let config = "[server]\npool_threads = 1\ninline_work_below = 0\nrequest_timeout_ms = 1000\n\n[slices.default]\nalgorithm = \"dpp\"\nlambda = 0.5\nk = 1000\n";
+    let server = Server::start(config).await;
+    let mut rng = Rng(7);
+    // DPP's largest working set under the default limits: 3 000 x 1 000, k = 1 000 (1.5 s in a
+    // release build, longer here).
+    let heavy: Vec<Value> = (0..3000)
+        .map(|i| {
+            let e: Vec<f32> = (0..1000).map(|_| rng.normal() as f32).collect();
+            json!({"id": format!("h{i}"), "score": rng.unit(), "embedding_b64": encode_b64_embedding(&e)})
+        })
+        .collect();
+    let r = exchange(&server, &post_json(&json!({"candidates": heavy}))).await.unwrap();
+    assert_eq!((r.status, r.code().as_str()), (503, "deadline_exceeded"));
+    let small = with(valid(), |v| v["k"] = json!(2));
+    let r = exchange(&server, &post_json(&small)).await.unwrap();
+    assert_eq!(r.status, 200, "the pool is free again: {}", String::from_utf8_lossy(&r.body));
+    server.stop().await;
+}

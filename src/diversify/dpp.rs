@@ -92,7 +92,9 @@ impl Diversifier for Dpp {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
-        Ok(Arch::new().dispatch(Greedy { input, params, ws, d: emb.dim() }))
+        let sel = Arch::new().dispatch(Greedy { input, params, ws, d: emb.dim() });
+        ws.check_cancelled()?;
+        Ok(sel)
     }
 }
 
@@ -134,6 +136,9 @@ impl WithSimd for Greedy<'_> {
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
         while sel.indices.len() < m {
+            if ws.cancelled() {
+                break;
+            }
             let step = sel.indices.len();
             let Some(top) = ws.heap.pop() else {
                 sel.exhausted_at = Some(step);

@@ -92,6 +92,9 @@ impl Diversifier for Mmr {
         );
 
         while sel.indices.len() < m {
+            if ws.cancelled() {
+                break;
+            }
             let step = sel.indices.len();
             let Some(top) = ws.heap.pop() else { break };
             let i = top.index;
@@ -118,6 +121,7 @@ impl Diversifier for Mmr {
             }
             take(input, ws, &mut sel, i, fresh.value);
         }
+        ws.check_cancelled()?;
         Ok(sel)
     }
 }

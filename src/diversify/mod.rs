@@ -19,6 +19,9 @@ mod similarity;
 
 pub use dpp::EPSILON;
 
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
 use crate::model::{Params, RerankInput, Selection};
 
 /// Why a kernel could not run on an otherwise valid slate.
@@ -30,6 +33,10 @@ pub enum KernelError {
         /// The algorithm's registry name.
         algorithm: &'static str,
     },
+    /// The caller stopped waiting (its deadline passed, or it disconnected), so the kernel
+    /// stopped at its next step instead of burning the rest of its work.
+    #[error("cancelled: the caller stopped waiting")]
+    Cancelled,
 }
 
 /// A re-ranking algorithm.
@@ -113,6 +120,9 @@ pub struct Workspace {
     scratch: Vec<f64>,
     /// Items taken per group, for caps and quotas.
     group_taken: Vec<usize>,
+    /// Set by whoever waits for the result when it stops waiting; the long kernels (MMR, DPP)
+    /// look at it once per step of their loop and stop early.
+    cancel: Option<Arc<AtomicBool>>,
 }
 
 impl Workspace {
@@ -120,6 +130,27 @@ impl Workspace {
     #[must_use]
     pub fn new() -> Self {
         Self::default()
+    }
+
+    /// Attaches (or with `None` detaches) the flag that asks the kernels to stop.
+    pub fn set_cancel(&mut self, flag: Option<Arc<AtomicBool>>) {
+        self.cancel = flag;
+    }
+
+    /// True once the attached flag is set. One relaxed load: cheap enough for every step.
+    #[inline]
+    pub(crate) fn cancelled(&self) -> bool {
+        self.cancel.as_ref().is_some_and(|f| f.load(Ordering::Relaxed))
+    }
+
+    /// `Err(Cancelled)` once the attached flag is set: what a kernel that stopped early returns,
+    /// so a partial slate is never mistaken for a finished one.
+    pub(crate) fn check_cancelled(&self) -> Result<(), KernelError> {
+        if self.cancelled() {
+            Err(KernelError::Cancelled)
+        } else {
+            Ok(())
+        }
     }
 
     /// Clears per-call state for a slate of `n` candidates in `groups` groups.
