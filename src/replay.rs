@@ -66,64 +66,77 @@ impl Corpus {
     }
 }
 
+/// Lines parsed and validated together, in parallel; bounds the raw text held at once.
+const READ_CHUNK_LINES: usize = 4096;
+
 /// Reads and validates a logged corpus; lines without clicks or that fail validation are
-/// skipped and reported.
+/// skipped and reported. Lines are read in chunks of [`READ_CHUNK_LINES`], each chunk parsed and
+/// validated on all cores, and item ids numbered in line order afterwards, so the result does
+/// not depend on the number of threads.
 ///
 /// # Errors
 /// Only I/O errors on `input`.
 pub fn read_corpus(engine: &Engine, input: &mut dyn BufRead) -> std::io::Result<Corpus> {
     let mut items: HashMap<String, u32> = HashMap::new();
     let (mut slates, mut skipped) = (Vec::new(), Vec::new());
-    let mut line = Vec::new();
     let mut number = 0_u64;
+    let mut chunk: Vec<(u64, Vec<u8>)> = Vec::with_capacity(READ_CHUNK_LINES);
     loop {
-        line.clear();
-        if input.read_until(b'\n', &mut line)? == 0 {
+        chunk.clear();
+        while chunk.len() < READ_CHUNK_LINES {
+            let mut line = Vec::new();
+            if input.read_until(b'\n', &mut line)? == 0 {
+                break;
+            }
+            number += 1;
+            if !line.trim_ascii().is_empty() {
+                chunk.push((number, line));
+            }
+        }
+        if chunk.is_empty() {
             break;
         }
-        number += 1;
-        if line.trim_ascii().is_empty() {
-            continue;
-        }
-        let logged: Logged = match serde_json::from_slice(&line) {
-            Ok(l) => l,
-            Err(e) => {
-                skipped.push((number, e.to_string()));
-                continue;
+        let parsed: Vec<(u64, Validated)> =
+            chunk.par_iter().map(|(n, line)| (*n, validate_line(engine, line))).collect();
+        for (n, result) in parsed {
+            match result {
+                Err(reason) => skipped.push((n, reason)),
+                Ok((input, clicked)) => {
+                    let item = input
+                        .ids()
+                        .iter()
+                        .map(|id| {
+                            let next = u32::try_from(items.len()).unwrap_or(u32::MAX);
+                            *items.entry(id.clone()).or_insert(next)
+                        })
+                        .collect();
+                    slates.push(Slate { input, clicked, item });
+                }
             }
-        };
-        if logged.clicked.is_empty() {
-            skipped.push((number, "no \"clicked\" ids".into()));
-            continue;
         }
-        let clicked_ids = logged.clicked;
-        // Validate as a DPP request on the default slice of `engine` (which the caller builds
-        // unlocked), so every slate has embeddings and every algorithm can run on it.
-        let mut request = logged.request;
-        request.slice = None;
-        request.algorithm = Some("dpp".into());
-        request.lambda = None;
-        request.k = None;
-        let prepared = match engine.prepare(request) {
-            Ok(p) => p,
-            Err(e) => {
-                skipped.push((number, e.to_string()));
-                continue;
-            }
-        };
-        let input = prepared.input;
-        let clicked = input.ids().iter().map(|id| clicked_ids.iter().any(|c| c == id)).collect();
-        let item = input
-            .ids()
-            .iter()
-            .map(|id| {
-                let next = u32::try_from(items.len()).unwrap_or(u32::MAX);
-                *items.entry(id.clone()).or_insert(next)
-            })
-            .collect();
-        slates.push(Slate { input, clicked, item });
     }
     Ok(Corpus { slates, items: items.len(), skipped })
+}
+
+/// A validated slate and its click flags, or why its line is skipped.
+type Validated = Result<(RerankInput, Vec<bool>), String>;
+
+/// One logged line into a validated slate and its click flags, or why it is skipped.
+fn validate_line(engine: &Engine, line: &[u8]) -> Validated {
+    let logged: Logged = serde_json::from_slice(line).map_err(|e| e.to_string())?;
+    if logged.clicked.is_empty() {
+        return Err("no \"clicked\" ids".into());
+    }
+    // Validate as a DPP request on the default slice of `engine` (which the caller builds
+    // unlocked), so every slate has embeddings and every algorithm can run on it.
+    let mut request = logged.request;
+    request.slice = None;
+    request.algorithm = Some("dpp".into());
+    request.lambda = None;
+    request.k = None;
+    let input = engine.prepare(request).map_err(|e| e.to_string())?.input;
+    let clicked = input.ids().iter().map(|id| logged.clicked.iter().any(|c| c == id)).collect();
+    Ok((input, clicked))
 }
 
 /// recall@k: clicked items in the slate ÷ clicked items offered (0 when none were clicked).
