@@ -70,7 +70,7 @@ impl Corpus {
 const READ_CHUNK_LINES: usize = 4096;
 
 /// Reads and validates a logged corpus; lines without clicks or that fail validation are
-/// skipped and reported. Lines are read in chunks of [`READ_CHUNK_LINES`], each chunk parsed and
+/// skipped and reported. Lines are read in chunks of 4 096 (`READ_CHUNK_LINES`), each chunk parsed and
 /// validated on all cores, and item ids numbered in line order afterwards, so the result does
 /// not depend on the number of threads.
 ///
