@@ -153,8 +153,15 @@ impl WithSimd for Greedy<'_> {
             if ws.filled[i] < step {
                 let xi = &ws.wide[i * d..(i + 1) * d];
                 let mut d2 = ws.running[i];
-                for q in ws.basis[ws.filled[i] * d..step * d].chunks_exact(d) {
-                    let e = dot(simd, xi, q);
+                // Two basis vectors at a time share each load of the row.
+                let mut pairs = ws.basis[ws.filled[i] * d..step * d].chunks_exact(2 * d);
+                for q in &mut pairs {
+                    let (e0, e1) = dot2(simd, xi, &q[..d], &q[d..]);
+                    d2 -= e0 * e0;
+                    d2 -= e1 * e1;
+                }
+                if !pairs.remainder().is_empty() {
+                    let e = dot(simd, xi, pairs.remainder());
                     d2 -= e * e;
                 }
                 ws.running[i] = d2;
@@ -200,22 +207,52 @@ fn push_basis_vector<S: Simd>(simd: S, x: &[f64], basis: &mut Vec<f64>, r: &mut 
     basis.extend(r.iter().map(|&v| v * inv));
 }
 
-/// f64 dot product with two FMA chains.
+/// `(x·q0, x·q1)`, loading `x` once, with two FMA chains per product.
+#[inline(always)]
+fn dot2<S: Simd>(simd: S, x: &[f64], q0: &[f64], q1: &[f64]) -> (f64, f64) {
+    let (xv, xt) = S::as_simd_f64s(x);
+    let (av, at) = S::as_simd_f64s(q0);
+    let (bv, bt) = S::as_simd_f64s(q1);
+    let zero = simd.splat_f64s(0.0);
+    let (mut a0, mut a1, mut b0, mut b1) = (zero, zero, zero, zero);
+    let mut xs = xv.chunks_exact(2);
+    let mut as_ = av.chunks_exact(2);
+    let mut bs = bv.chunks_exact(2);
+    for ((px, pa), pb) in (&mut xs).zip(&mut as_).zip(&mut bs) {
+        a0 = simd.mul_add_e_f64s(px[0], pa[0], a0);
+        b0 = simd.mul_add_e_f64s(px[0], pb[0], b0);
+        a1 = simd.mul_add_e_f64s(px[1], pa[1], a1);
+        b1 = simd.mul_add_e_f64s(px[1], pb[1], b1);
+    }
+    for ((&px, &pa), &pb) in xs.remainder().iter().zip(as_.remainder()).zip(bs.remainder()) {
+        a0 = simd.mul_add_e_f64s(px, pa, a0);
+        b0 = simd.mul_add_e_f64s(px, pb, b0);
+    }
+    let ta: f64 = xt.iter().zip(at).map(|(x, y)| x * y).sum();
+    let tb: f64 = xt.iter().zip(bt).map(|(x, y)| x * y).sum();
+    (simd.reduce_sum_f64s(simd.add_f64s(a0, a1)) + ta, simd.reduce_sum_f64s(simd.add_f64s(b0, b1)) + tb)
+}
+
+/// f64 dot product with four FMA chains: at d = 64 (16 AVX2 vectors) two chains left the loop
+/// bound by FMA latency (4 cycles) rather than by the two FMA ports.
 #[inline(always)]
 fn dot<S: Simd>(simd: S, a: &[f64], b: &[f64]) -> f64 {
     let (av, at) = S::as_simd_f64s(a);
     let (bv, bt) = S::as_simd_f64s(b);
-    let (mut acc0, mut acc1) = (simd.splat_f64s(0.0), simd.splat_f64s(0.0));
-    let mut pairs_a = av.chunks_exact(2);
-    let mut pairs_b = bv.chunks_exact(2);
-    for (pa, pb) in (&mut pairs_a).zip(&mut pairs_b) {
-        acc0 = simd.mul_add_e_f64s(pa[0], pb[0], acc0);
-        acc1 = simd.mul_add_e_f64s(pa[1], pb[1], acc1);
+    let zero = simd.splat_f64s(0.0);
+    let (mut acc0, mut acc1, mut acc2, mut acc3) = (zero, zero, zero, zero);
+    let mut quads_a = av.chunks_exact(4);
+    let mut quads_b = bv.chunks_exact(4);
+    for (qa, qb) in (&mut quads_a).zip(&mut quads_b) {
+        acc0 = simd.mul_add_e_f64s(qa[0], qb[0], acc0);
+        acc1 = simd.mul_add_e_f64s(qa[1], qb[1], acc1);
+        acc2 = simd.mul_add_e_f64s(qa[2], qb[2], acc2);
+        acc3 = simd.mul_add_e_f64s(qa[3], qb[3], acc3);
     }
-    for (&x, &y) in pairs_a.remainder().iter().zip(pairs_b.remainder()) {
+    for (&x, &y) in quads_a.remainder().iter().zip(quads_b.remainder()) {
         acc0 = simd.mul_add_e_f64s(x, y, acc0);
     }
     let tail: f64 = at.iter().zip(bt).map(|(x, y)| x * y).sum();
-    simd.reduce_sum_f64s(simd.add_f64s(acc0, acc1)) + tail
+    simd.reduce_sum_f64s(simd.add_f64s(simd.add_f64s(acc0, acc1), simd.add_f64s(acc2, acc3))) + tail
 }
 
