@@ -12,6 +12,7 @@
 #   loadtest/largest.sh            # about 1 minute after the build
 set -euo pipefail
 cd "$(dirname "$0")/.."
+. loadtest/lib.sh
 cargo build --release --locked --bin medley --quiet
 bin=target/release/medley
 work="$(mktemp -d)"
@@ -49,15 +50,7 @@ request_timeout_ms = 600000
 [slices.default]
 algorithm = "$algo"
 EOF
-  : > "$work/server.log"
-  $bin serve --config "$work/medley.toml" 2> "$work/server.log" &
-  server_pid=$!
-  addr=""
-  for _ in $(seq 1 100); do
-    addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$work/server.log" | head -1)"
-    [ -n "$addr" ] && break
-    sleep 0.1
-  done
+  start_medley "$bin" "$work/medley.toml" "$work/server.log"
   out="$(curl -s -o /dev/null -w '%{http_code} %{time_total}' -H 'content-type: application/json' \
         --data-binary @"$work/largest.json" "http://$addr/v1/rerank")"
   peak=$(awk '/^VmHWM/ {print $2}' "/proc/$server_pid/status")

@@ -18,6 +18,7 @@
 # Bounded: every step has a fixed duration and the server is stopped on exit. Loopback only.
 set -euo pipefail
 cd "$(dirname "$0")/.."
+. loadtest/lib.sh
 
 duration=10
 soak=0
@@ -60,15 +61,7 @@ lambda = $LAMBDA
 k = $K
 EOF
 $bin check-config "$work/medley.toml" >/dev/null
-$bin serve --config "$work/medley.toml" 2> "$work/server.log" &
-server_pid=$!
-addr=""
-for _ in $(seq 1 100); do
-  addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$work/server.log" | head -1)"
-  [ -n "$addr" ] && break
-  sleep 0.1
-done
-[ -n "$addr" ] || { echo "the server did not start:" >&2; cat "$work/server.log" >&2; exit 1; }
+start_medley "$bin" "$work/medley.toml" "$work/server.log"
 url="http://$addr/v1/rerank"
 
 rss_kib() { awk '/^VmRSS/ {print $2}' "/proc/$server_pid/status"; }

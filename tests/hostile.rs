@@ -740,6 +740,10 @@ mod properties {
     fn apply(mut v: Value, m: &Mutation) -> Vec<u8> {
         let n = v["candidates"].as_array().unwrap().len();
         let field = |c: &Value| if c.get("embedding").is_some() { "embedding" } else { "embedding_b64" };
+        let dim = |c: &Value| match c.get("embedding") {
+            Some(e) => e.as_array().unwrap().len(),
+            None => medley::wire::decode_b64_embedding(c["embedding_b64"].as_str().unwrap()).unwrap().len(),
+        };
         match m {
             Mutation::ScoreType(i, t) => v["candidates"][i % n]["score"] = t.clone(),
             Mutation::DropField(i, f) => {
@@ -753,23 +757,13 @@ mod properties {
                 // Candidate i gets one more dimension than the others (i = 0 sets the dimension,
                 // so then every other candidate mismatches).
                 let c = &mut v["candidates"][i % n];
-                let f = field(c);
-                let d = if f == "embedding" {
-                    c[f].as_array().unwrap().len()
-                } else {
-                    medley::wire::decode_b64_embedding(c[f].as_str().unwrap()).unwrap().len()
-                };
+                let d = dim(c);
                 c.as_object_mut().unwrap().remove("embedding");
                 c["embedding_b64"] = json!(encode_b64_embedding(&vec![1.0; d + 1]));
             }
             Mutation::ZeroEmbedding(i) => {
                 let c = &mut v["candidates"][i % n];
-                let f = field(c);
-                let d = if f == "embedding" {
-                    c[f].as_array().unwrap().len()
-                } else {
-                    medley::wire::decode_b64_embedding(c[f].as_str().unwrap()).unwrap().len()
-                };
+                let (f, d) = (field(c), dim(c));
                 c[f] = if f == "embedding" {
                     json!(vec![0.0; d])
                 } else {
