@@ -13,12 +13,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 . loadtest/lib.sh
-cargo build --release --locked --bin medley --quiet
-bin=target/release/medley
-work="$(mktemp -d)"
-server_pid=""
-cleanup() { [ -n "$server_pid" ] && kill "$server_pid" 2>/dev/null; wait 2>/dev/null; rm -rf "$work"; }
-trap cleanup EXIT
+prepare
 echo "machine: $(nproc) cores, $(awk -F': ' '/model name/ {print $2; exit}' /proc/cpuinfo)"
 
 for shape in "10000 288" "3000 1000"; do

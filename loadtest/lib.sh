@@ -18,3 +18,13 @@ start_medley() {
   cat "$log" >&2
   exit 1
 }
+
+# prepare: builds the release binary and sets bin, a scratch dir in work, and an EXIT trap that
+# stops the server (server_pid) and removes the scratch dir.
+prepare() {
+  cargo build --release --locked --bin medley --quiet
+  bin=target/release/medley
+  work="$(mktemp -d)"
+  server_pid=""
+  trap '[ -n "$server_pid" ] && kill "$server_pid" 2>/dev/null; wait 2>/dev/null; rm -rf "$work"' EXIT
+}

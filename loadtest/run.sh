@@ -38,13 +38,7 @@ if ! command -v oha >/dev/null; then
   echo "installing oha from crates.io (once; a few minutes)" >&2
   cargo install oha --locked --quiet
 fi
-cargo build --release --locked --bin medley --quiet
-bin=target/release/medley
-
-work="$(mktemp -d)"
-server_pid=""
-cleanup() { [ -n "$server_pid" ] && kill "$server_pid" 2>/dev/null; wait 2>/dev/null; rm -rf "$work"; }
-trap cleanup EXIT
+prepare
 
 $bin sample --requests 1000 --candidates "$N" --dim "$D" --seed 7 --b64 > "$work/corpus.jsonl"
 cat > "$work/medley.toml" <<EOF
