@@ -1,5 +1,7 @@
 //! `dpp`: greedy MAP inference for a quality-weighted DPP, with an incremental Cholesky factor.
 
+use std::collections::binary_heap::PeekMut;
+
 use pulp::{Arch, Simd, WithSimd};
 
 use super::{allowed, fill_by_score, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
@@ -34,18 +36,20 @@ pub const EPSILON: f64 = 1e-9;
 /// the R of the QR of `X_Yᵀ`), so with `q_t = (x_j − Σ_{s<t} e_{j,s} q_s) / d_j`,
 /// `e_i = (⟨x_i, x_j⟩ − ⟨c_j, c_i⟩) / d_j = ⟨x_i, q_t⟩`: one length-d dot product per candidate
 /// and pick instead of a length-d plus a length-t one, against a basis that sits in L1 cache.
-/// `q_t` is built by Gram–Schmidt applied twice (L. Giraud, J. Langou, M. Rozložník,
-/// "The loss of orthogonality in the Gram–Schmidt orthogonalization process", Computers &
-/// Mathematics with Applications 50, 2005: "twice is enough"), which keeps the basis orthonormal
-/// to working precision. The slow `reference::dpp` re-factorises `S_Y` with a textbook Cholesky
+/// `q_t` is built by classical Gram–Schmidt applied twice (CGS2), which keeps the basis
+/// orthonormal to working precision while the picked rows stay numerically independent, as they
+/// do here (`d_j² ≥ EPSILON` at every pick): L. Giraud, J. Langou, M. Rozložník, "The loss of
+/// orthogonality in the Gram–Schmidt orthogonalization process", Computers & Mathematics with
+/// Applications 50, 2005 ("twice is enough"; citation from memory). Classical rather than
+/// modified, so each sweep's dot products are independent and share loads. The slow `reference::dpp` re-factorises `S_Y` with a textbook Cholesky
 /// at every step, and the tests hold this kernel to it and to nalgebra determinants.
 ///
 /// Evaluated lazily (M. Minoux, "Accelerated greedy algorithms for maximizing submodular set
 /// functions", Optimization Techniques, LNCS 7, 1978): the objective is a modular term plus
 /// `λ·ln det`, which is submodular, so each candidate's value only falls as the slate grows. A
 /// max-heap holds stale values as upper bounds; only the candidate on top is brought up to date
-/// (projected on the basis vectors it has not seen), and it is taken once its fresh value still
-/// beats every other bound. The picks are exactly those of the eager algorithm (same objective,
+/// (projected on the basis vectors it has not seen) and put back in place, and it is taken once
+/// it is on top with a fresh value. The picks are exactly those of the eager algorithm (same objective,
 /// same tie rule).
 ///
 /// # Complexity
@@ -140,7 +144,7 @@ impl WithSimd for Greedy<'_> {
                 break;
             }
             let step = sel.indices.len();
-            let Some(top) = ws.heap.pop() else {
+            let Some(mut top) = ws.heap.peek_mut() else {
                 sel.exhausted_at = Some(step);
                 fill_by_score(input, params, ws, m, &mut sel);
                 break;
@@ -148,63 +152,59 @@ impl WithSimd for Greedy<'_> {
             let i = top.index;
             // Caps only tighten and residuals only shrink, so a candidate dropped here is out for good.
             if !allowed(input, params, &ws.group_taken, i) {
+                PeekMut::pop(top);
                 continue;
             }
             if ws.filled[i] < step {
-                let xi = &ws.wide[i * d..(i + 1) * d];
-                let mut d2 = ws.running[i];
-                // Two basis vectors at a time share each load of the row.
-                let mut pairs = ws.basis[ws.filled[i] * d..step * d].chunks_exact(2 * d);
-                for q in &mut pairs {
-                    let (e0, e1) = dot2(simd, xi, &q[..d], &q[d..]);
-                    d2 -= e0 * e0;
-                    d2 -= e1 * e1;
-                }
-                if !pairs.remainder().is_empty() {
-                    let e = dot(simd, xi, pairs.remainder());
-                    d2 -= e * e;
-                }
+                // A stale bound on top: bring it up to date and put it back in place (one sift
+                // down, where a pop and a push would cost two). If it is still on top next time
+                // round, it is exact and no other bound beats it: the greedy pick.
+                let removed = project_out(simd, &ws.wide[i * d..(i + 1) * d], &ws.basis, ws.filled[i], step, d);
+                let d2 = ws.running[i] - removed;
                 ws.running[i] = d2;
                 ws.filled[i] = step;
+                if d2 < EPSILON {
+                    PeekMut::pop(top);
+                    continue;
+                }
+                let fresh = (1.0 - lambda) * s[i] + lambda * d2.ln();
+                debug_assert!(fresh <= top.value + 1e-9, "lazy bound grew: residuals must not increase");
+                top.value = fresh;
+                continue;
             }
+            // On top and exact for this step (refreshed, or an initial bound at step 0).
+            PeekMut::pop(top);
             let d2 = ws.running[i];
-            if d2 < EPSILON {
-                continue;
-            }
-            let fresh = Bound { value: (1.0 - lambda) * s[i] + lambda * d2.ln(), index: i };
-            debug_assert!(fresh.value <= top.value + 1e-9, "lazy bound grew: residuals must not increase");
-            if ws.heap.peek().is_some_and(|next| *next > fresh) {
-                ws.heap.push(fresh);
-                continue;
-            }
             take(input, ws, &mut sel, i, d2);
             if sel.indices.len() < m {
-                push_basis_vector(simd, &ws.wide[i * d..(i + 1) * d], &mut ws.basis, &mut ws.scratch, d);
+                let Workspace { wide, basis, scratch, .. } = &mut *ws;
+                push_basis_vector(simd, &wide[i * d..(i + 1) * d], basis, scratch, d);
             }
         }
         sel
     }
 }
 
-/// Appends `x` orthogonalised against the basis and normalised: modified Gram–Schmidt, two sweeps.
-/// O(t·d) for a basis of t vectors.
+/// `Σ_t ⟨x, q_t⟩²` over basis vectors `q_from .. q_to`: how much of `d_i²` those picks remove.
+/// Four (at the end two) basis vectors share each load of `x`.
 #[inline(always)]
-fn push_basis_vector<S: Simd>(simd: S, x: &[f64], basis: &mut Vec<f64>, r: &mut Vec<f64>, d: usize) {
-    r.clear();
-    r.extend_from_slice(x);
-    // Two sweeps: the second removes what rounding left of the first's projections.
-    for _sweep in 0..2 {
-        for q in basis.chunks_exact(d) {
-            let c = dot(simd, r, q);
-            for (rv, &qv) in r.iter_mut().zip(q) {
-                *rv -= c * qv;
-            }
-        }
+fn project_out<S: Simd>(simd: S, x: &[f64], basis: &[f64], from: usize, to: usize, d: usize) -> f64 {
+    let mut quads = basis[from * d..to * d].chunks_exact(4 * d);
+    let mut removed = 0.0;
+    for q in &mut quads {
+        let [e0, e1, e2, e3] = dot4(simd, x, q, d);
+        removed += e0.mul_add(e0, e1 * e1) + e2.mul_add(e2, e3 * e3);
     }
-    let norm = dot(simd, r, r).sqrt();
-    debug_assert!(norm > 0.0, "a picked candidate has residual above EPSILON");
-    let inv = 1.0 / norm;
-    basis.extend(r.iter().map(|&v| v * inv));
+    let mut rest = quads.remainder().chunks_exact(2 * d);
+    for q in &mut rest {
+        let (e0, e1) = dot2(simd, x, &q[..d], &q[d..]);
+        removed += e0.mul_add(e0, e1 * e1);
+    }
+    if !rest.remainder().is_empty() {
+        let e = dot(simd, x, rest.remainder());
+        removed = e.mul_add(e, removed);
+    }
+    removed
 }
 
 /// `(x·q0, x·q1)`, loading `x` once, with two FMA chains per product.
@@ -231,6 +231,81 @@ fn dot2<S: Simd>(simd: S, x: &[f64], q0: &[f64], q1: &[f64]) -> (f64, f64) {
     let ta: f64 = xt.iter().zip(at).map(|(x, y)| x * y).sum();
     let tb: f64 = xt.iter().zip(bt).map(|(x, y)| x * y).sum();
     (simd.reduce_sum_f64s(simd.add_f64s(a0, a1)) + ta, simd.reduce_sum_f64s(simd.add_f64s(b0, b1)) + tb)
+}
+
+/// Appends `x` orthogonalised against the basis and normalised: classical Gram–Schmidt applied
+/// twice (CGS2). Each sweep takes all `t` coefficients `Qᵀr` first, as independent dot products
+/// four basis vectors per load of `r`, then subtracts `Q·(Qᵀr)`; O(t·d) per sweep. (Modified
+/// Gram–Schmidt would chain every dot product on the one before.)
+#[inline(always)]
+fn push_basis_vector<S: Simd>(simd: S, x: &[f64], basis: &mut Vec<f64>, r: &mut Vec<f64>, d: usize) {
+    let t = basis.len() / d;
+    // `r` then its t coefficients, in one buffer.
+    r.clear();
+    r.extend_from_slice(x);
+    r.resize(d + t, 0.0);
+    let (r, coef) = r.split_at_mut(d);
+    // Two sweeps: the second removes what rounding left of the first's projections.
+    for _sweep in 0..2 {
+        let mut quads = basis.chunks_exact(4 * d);
+        let mut c = coef.chunks_exact_mut(4);
+        for (q, c) in (&mut quads).zip(&mut c) {
+            c.copy_from_slice(&dot4(simd, r, q, d));
+        }
+        for (q, c) in quads.remainder().chunks_exact(d).zip(c.into_remainder()) {
+            *c = dot(simd, r, q);
+        }
+        for (q, &c) in basis.chunks_exact(d).zip(coef.iter()) {
+            for (rv, &qv) in r.iter_mut().zip(q) {
+                *rv = (-c).mul_add(qv, *rv);
+            }
+        }
+    }
+    let norm = dot(simd, r, r).sqrt();
+    debug_assert!(norm > 0.0, "a picked candidate has residual above EPSILON");
+    let inv = 1.0 / norm;
+    basis.extend(r.iter().map(|&v| v * inv));
+}
+
+/// `[⟨x, q_0⟩, …, ⟨x, q_3⟩]` for the four consecutive d-length rows of `q`, loading `x` once per
+/// four products; two FMA chains per product, eight in flight, cover the FMA latency.
+#[inline(always)]
+fn dot4<S: Simd>(simd: S, x: &[f64], q: &[f64], d: usize) -> [f64; 4] {
+    let (q0, rest) = q.split_at(d);
+    let (q1, rest) = rest.split_at(d);
+    let (q2, q3) = rest.split_at(d);
+    let (xv, xt) = S::as_simd_f64s(x);
+    let (v0, t0) = S::as_simd_f64s(q0);
+    let (v1, t1) = S::as_simd_f64s(q1);
+    let (v2, t2) = S::as_simd_f64s(q2);
+    let (v3, t3) = S::as_simd_f64s(&q3[..d]);
+    let zero = simd.splat_f64s(0.0);
+    let mut acc = [zero; 8];
+    for p in 0..xv.len() / 2 {
+        let (a, b) = (2 * p, 2 * p + 1);
+        acc[0] = simd.mul_add_e_f64s(xv[a], v0[a], acc[0]);
+        acc[1] = simd.mul_add_e_f64s(xv[a], v1[a], acc[1]);
+        acc[2] = simd.mul_add_e_f64s(xv[a], v2[a], acc[2]);
+        acc[3] = simd.mul_add_e_f64s(xv[a], v3[a], acc[3]);
+        acc[4] = simd.mul_add_e_f64s(xv[b], v0[b], acc[4]);
+        acc[5] = simd.mul_add_e_f64s(xv[b], v1[b], acc[5]);
+        acc[6] = simd.mul_add_e_f64s(xv[b], v2[b], acc[6]);
+        acc[7] = simd.mul_add_e_f64s(xv[b], v3[b], acc[7]);
+    }
+    if xv.len() % 2 == 1 {
+        let a = xv.len() - 1;
+        acc[0] = simd.mul_add_e_f64s(xv[a], v0[a], acc[0]);
+        acc[1] = simd.mul_add_e_f64s(xv[a], v1[a], acc[1]);
+        acc[2] = simd.mul_add_e_f64s(xv[a], v2[a], acc[2]);
+        acc[3] = simd.mul_add_e_f64s(xv[a], v3[a], acc[3]);
+    }
+    let tail = |t: &[f64]| -> f64 { xt.iter().zip(t).map(|(x, y)| x * y).sum() };
+    [
+        simd.reduce_sum_f64s(simd.add_f64s(acc[0], acc[4])) + tail(t0),
+        simd.reduce_sum_f64s(simd.add_f64s(acc[1], acc[5])) + tail(t1),
+        simd.reduce_sum_f64s(simd.add_f64s(acc[2], acc[6])) + tail(t2),
+        simd.reduce_sum_f64s(simd.add_f64s(acc[3], acc[7])) + tail(t3),
+    ]
 }
 
 /// f64 dot product with four FMA chains: at d = 64 (16 AVX2 vectors) two chains left the loop

@@ -186,7 +186,16 @@ impl PartialOrd for Bound {
 
 impl Ord for Bound {
     fn cmp(&self, other: &Self) -> std::cmp::Ordering {
-        self.value.total_cmp(&other.value).then(other.index.cmp(&self.index))
+        // Values are never NaN (finite scores, logs of residuals above EPSILON), so the plain
+        // comparison is total here; it compiles to one compare where `total_cmp` needs bit tricks.
+        debug_assert!(!self.value.is_nan() && !other.value.is_nan(), "NaN bound");
+        if self.value > other.value {
+            std::cmp::Ordering::Greater
+        } else if self.value < other.value {
+            std::cmp::Ordering::Less
+        } else {
+            other.index.cmp(&self.index)
+        }
     }
 }
 
