@@ -23,6 +23,11 @@ use crate::diversify::Workspace;
 /// async worker (DEVELOPERS.md, "Inline cut-off", has the measurement).
 pub const INLINE_WORK_BELOW: u64 = 100_000;
 
+/// Scratch space a thread keeps between jobs. A DPP slate of (N, d) = (5 000, 256) needs about
+/// 10 MiB and stays cached; the largest slates the default limits allow need about 25 MiB, which
+/// is freed after the job instead of staying pinned in every pool thread that ever ran one.
+pub const RETAIN_WORKSPACE_BYTES: usize = 16 << 20;
+
 thread_local! {
     static WORKSPACE: RefCell<Workspace> = RefCell::new(Workspace::new());
 }
@@ -64,9 +69,8 @@ impl Pool {
     /// Runs `job` with this thread's workspace: inline when `work` is below the cut-off,
     /// otherwise on the pool, awaiting the result without blocking the runtime.
     ///
-    /// Dropping the returned future does not stop a job already on the pool; it runs to the end
-    /// and its result is discarded (kernels are not interruptible; the request deadline answers the
-    /// caller, and the concurrency limit bounds how many such jobs can pile up).
+    /// Dropping the returned future (the deadline passed, the client went away) raises the job's
+    /// cancel flag: a job still queued is skipped, and MMR and DPP stop at their next step.
     ///
     /// # Errors
     /// [`PoolError::Panicked`] if the job panicked.
@@ -126,7 +130,9 @@ pub fn run_here<R>(job: impl FnOnce(&mut Workspace) -> R) -> Result<R, PoolError
             Ok(mut ws) => {
                 // No flag from an earlier job (one that panicked, say) carries over.
                 ws.set_cancel(None);
-                job(&mut ws)
+                let result = job(&mut ws);
+                ws.trim(RETAIN_WORKSPACE_BYTES);
+                result
             }
             // Re-entrant use (a job calling run_here) gets a fresh workspace.
             Err(_) => job(&mut Workspace::new()),
@@ -174,5 +180,40 @@ mod tests {
         assert_eq!(err, PoolError::Panicked("inline 1".into()));
         // The pool survives a panic.
         assert_eq!(pool.run(10, |_| 7).await.unwrap(), 7);
+    }
+
+    /// A DPP run on `n` random rows of dimension `d`, then the bytes its workspace kept.
+    async fn retained_after_dpp(pool: &Pool, n: usize, d: usize) -> usize {
+        use crate::{CandidateInput, Diversifier, Limits, Params, RerankInput, ScoreTransform};
+        let mut state = 7u64;
+        let mut next = move || {
+            state = state.wrapping_mul(6_364_136_223_846_793_005).wrapping_add(1_442_695_040_888_963_407);
+            (state >> 40) as f32 / (1u64 << 24) as f32 - 0.5
+        };
+        let cands = (0..n)
+            .map(|i| CandidateInput {
+                id: format!("c{i}"),
+                score: f64::from(next()),
+                category: None,
+                embedding: Some((0..d).map(|_| next()).collect()),
+            })
+            .collect();
+        let limits = Limits { max_candidates: n, ..Limits::default() };
+        let input = RerankInput::new(cands, ScoreTransform::MinMax, true, &limits).unwrap();
+        let params = Params::new(3, 0.5, &limits).unwrap();
+        pool.run(u64::MAX, move |ws| crate::diversify::Dpp.select(&input, &params, ws).unwrap())
+            .await
+            .unwrap();
+        pool.run(u64::MAX, |ws| ws.retained_bytes()).await.unwrap()
+    }
+
+    #[tokio::test]
+    async fn a_huge_slate_does_not_pin_its_scratch_space() {
+        let pool = Pool::new(1, 10).unwrap();
+        // 500 × 64 rows widened to f64 are 256 KiB: kept for the next call.
+        assert!(retained_after_dpp(&pool, 500, 64).await >= 500 * 64 * 8);
+        // 9 000 × 256 are 18 MiB, over RETAIN_WORKSPACE_BYTES: freed once the job is done.
+        const { assert!(9_000 * 256 * 8 > RETAIN_WORKSPACE_BYTES) };
+        assert_eq!(retained_after_dpp(&pool, 9_000, 256).await, 0);
     }
 }

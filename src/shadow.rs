@@ -173,6 +173,7 @@ fn work(rx: &Receiver<Message>, metrics: &Metrics) {
                 shadow.algorithm.select(&p.input, &params, &mut ws)
             }
         }));
+        ws.trim(crate::pool::RETAIN_WORKSPACE_BYTES);
         let Ok(Ok(selection)) = outcome else {
             if outcome.is_err() {
                 metrics.panics.inc();

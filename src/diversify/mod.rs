@@ -153,6 +153,30 @@ impl Workspace {
         }
     }
 
+    /// Bytes the buffers hold on to between calls (their capacity, not their length).
+    #[must_use]
+    pub fn retained_bytes(&self) -> usize {
+        use std::mem::size_of;
+        self.taken.capacity() * size_of::<bool>()
+            + (self.order.capacity() + self.filled.capacity() + self.group_taken.capacity())
+                * size_of::<usize>()
+            + (self.wide.capacity()
+                + self.running.capacity()
+                + self.basis.capacity()
+                + self.scratch.capacity())
+                * size_of::<f64>()
+            + self.heap.capacity() * size_of::<Bound>()
+    }
+
+    /// Frees every buffer when together they hold more than `max_bytes`, so one huge slate does
+    /// not pin its scratch space in a long-lived thread; slates under the limit keep reusing it.
+    pub fn trim(&mut self, max_bytes: usize) {
+        if self.retained_bytes() > max_bytes {
+            let cancel = self.cancel.take();
+            *self = Self { cancel, ..Self::default() };
+        }
+    }
+
     /// Clears per-call state for a slate of `n` candidates in `groups` groups.
     fn reset(&mut self, n: usize, groups: usize) {
         self.taken.clear();
