@@ -189,19 +189,21 @@ impl WithSimd for Greedy<'_> {
 /// Four (at the end two) basis vectors share each load of `x`.
 #[inline(always)]
 fn project_out<S: Simd>(simd: S, x: &[f64], basis: &[f64], from: usize, to: usize, d: usize) -> f64 {
-    let mut quads = basis[from * d..to * d].chunks_exact(4 * d);
+    // Counted in basis vectors: `chunks_exact(4 * d)` would divide by a run-time chunk size.
+    let mut t = from;
     let mut removed = 0.0;
-    for q in &mut quads {
-        let [e0, e1, e2, e3] = dot4(simd, x, q, d);
+    while t + 4 <= to {
+        let [e0, e1, e2, e3] = dot4(simd, x, &basis[t * d..(t + 4) * d], d);
         removed += e0.mul_add(e0, e1 * e1) + e2.mul_add(e2, e3 * e3);
+        t += 4;
     }
-    let mut rest = quads.remainder().chunks_exact(2 * d);
-    for q in &mut rest {
-        let (e0, e1) = dot2(simd, x, &q[..d], &q[d..]);
+    if t + 2 <= to {
+        let (e0, e1) = dot2(simd, x, &basis[t * d..(t + 1) * d], &basis[(t + 1) * d..(t + 2) * d]);
         removed += e0.mul_add(e0, e1 * e1);
+        t += 2;
     }
-    if !rest.remainder().is_empty() {
-        let e = dot(simd, x, rest.remainder());
+    if t < to {
+        let e = dot(simd, x, &basis[t * d..(t + 1) * d]);
         removed = e.mul_add(e, removed);
     }
     removed
