@@ -163,6 +163,9 @@ async fn admin_is_closed_without_a_token_and_checks_it() {
     let v = admin_config(&server).await;
     assert_eq!(v["config"]["slices"]["home"]["arms"][1]["name"], "treatment-b");
     assert_eq!(v["config_generation"], 1);
+    // The listeners as bound (ephemeral ports here), not as configured.
+    assert_eq!(v["listen"], server.addr.to_string());
+    assert_eq!(format!("http://{}", v["admin_listen"].as_str().unwrap()), server.admin);
     server.stop().await;
 }
 

@@ -77,16 +77,17 @@ async fn reload(State(state): State<AppState>) -> Result<Response, ApiError> {
 async fn config(State(state): State<AppState>) -> Response {
     let engine = state.engine.load_full();
     let source = state.reloader.source();
+    let bound = state.bound();
     json(&serde_json::json!({
         "config_generation": engine.generation(),
         "config_digest": engine.digest(),
         "source": source.describe(),
         "overlay": source.overlay.as_ref().map(|p| p.display().to_string()),
         "runtime_slices": state.reloader.runtime_slices(),
-        // The file's values, with runtime slices merged; listeners as actually bound may differ
-        // (--listen, --admin-listen), so they are reported beside it.
-        "listen": engine.config().server.listen.to_string(),
-        "admin_listen": engine.config().server.admin_listen.to_string(),
+        // The listeners as bound: `config` holds the file's values (with runtime slices merged),
+        // where a port may be 0 and `--listen` / `--admin-listen` may have overridden it.
+        "listen": bound.map_or(engine.config().server.listen, |(p, _)| p).to_string(),
+        "admin_listen": bound.map_or(engine.config().server.admin_listen, |(_, a)| a).to_string(),
         "config": engine.config().raw,
     }))
 }

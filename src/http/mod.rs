@@ -72,6 +72,9 @@ pub struct AppState {
     max_in_flight: usize,
     /// Set when shutdown starts: readiness turns 503 so load balancers stop sending.
     draining: Arc<AtomicBool>,
+    /// The public and private addresses as bound (a configured port 0 becomes a real one); set
+    /// once by [`serve`].
+    bound: Arc<std::sync::OnceLock<(std::net::SocketAddr, std::net::SocketAddr)>>,
 }
 
 impl AppState {
@@ -107,7 +110,14 @@ impl AppState {
             permits: Arc::new(Semaphore::new(max_in_flight)),
             max_in_flight,
             draining: Arc::new(AtomicBool::new(false)),
+            bound: Arc::default(),
         })
+    }
+
+    /// The `(public, private)` addresses as bound, once [`serve`] has started.
+    #[must_use]
+    pub fn bound(&self) -> Option<(std::net::SocketAddr, std::net::SocketAddr)> {
+        self.bound.get().copied()
     }
 
     fn is_draining(&self) -> bool {
@@ -234,6 +244,9 @@ async fn drain_small_body(request: Request) -> bool {
 /// lets in-flight requests (and open streams) finish, and returns. Accept errors are logged and
 /// retried (see [`conn`]), so it returns only through shutdown.
 pub async fn serve(public: TcpListener, admin: TcpListener, state: AppState, shutdown: Shutdown) {
+    if let (Ok(p), Ok(a)) = (public.local_addr(), admin.local_addr()) {
+        let _ = state.bound.set((p, a));
+    }
     let draining = state.draining.clone();
     let mark = shutdown.clone();
     tokio::spawn(async move {
