@@ -33,8 +33,35 @@ pub struct RerankRequest {
     /// A user or session id; the same unit always lands in the same arm of a slice.
     #[serde(default)]
     pub unit_id: Option<String>,
-    /// The scored candidates.
+    /// The scored candidates, each a JSON object.
+    #[serde(deserialize_with = "objects")]
     pub candidates: Vec<WireCandidate>,
+}
+
+/// A `T` that must arrive as a JSON object. serde's derived structs also accept an array of the
+/// fields in order (`["a", 0.5]` for a candidate); the wire contract has named fields only.
+struct ObjectOnly<T>(T);
+
+impl<'de, T: Deserialize<'de>> Deserialize<'de> for ObjectOnly<T> {
+    fn deserialize<D: serde::Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        struct Object<T>(std::marker::PhantomData<T>);
+        impl<'de, T: Deserialize<'de>> serde::de::Visitor<'de> for Object<T> {
+            type Value = T;
+            fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+                f.write_str("a candidate object, {\"id\": ..., \"score\": ...}")
+            }
+            fn visit_map<A: serde::de::MapAccess<'de>>(self, map: A) -> Result<T, A::Error> {
+                T::deserialize(serde::de::value::MapAccessDeserializer::new(map))
+            }
+        }
+        deserializer.deserialize_map(Object(std::marker::PhantomData)).map(ObjectOnly)
+    }
+}
+
+/// `candidates`: an array of objects.
+fn objects<'de, D: serde::Deserializer<'de>>(deserializer: D) -> Result<Vec<WireCandidate>, D::Error> {
+    let wrapped = Vec::<ObjectOnly<WireCandidate>>::deserialize(deserializer)?;
+    Ok(wrapped.into_iter().map(|c| c.0).collect())
 }
 
 /// One candidate on the wire.
@@ -257,6 +284,13 @@ mod tests {
         assert!(e.to_string().contains("duplicate field `k`"), "{e}");
         let e = decode_request(br#"{"candidates":[{"id":"a","score":1e400}]}"#).unwrap_err();
         assert_eq!((e.code(), e.path().as_deref()), ("invalid_field", Some("candidates[0].score")));
+        // A candidate is an object: serde's positional form of a struct is refused.
+        let e = decode_request(br#"{"candidates":[{"id":"a","score":1},["b",0.5]]}"#).unwrap_err();
+        assert_eq!((e.code(), e.path().as_deref()), ("invalid_field", Some("candidates[1]")));
+        assert!(e.to_string().contains("expected a candidate object"), "{e}");
+        // Paths inside an object candidate are still named.
+        let e = decode_request(br#"{"candidates":[{"id":"a","score":1,"embedding":[1,"x"]}]}"#).unwrap_err();
+        assert_eq!(e.path().as_deref(), Some("candidates[0].embedding[1]"));
         let e = decode_request(br#"{"candidates":[{"id":"a","score":1,"embedding":[1e39]}]}"#).unwrap_err();
         assert_eq!((e.code(), e.path().as_deref()), ("invalid_field", Some("candidates[0].embedding[0]")));
         let e = decode_request(b"{}").unwrap_err();
