@@ -45,7 +45,7 @@ request_timeout_ms = 600000
 [slices.default]
 algorithm = "$algo"
 EOF
-  start_medley "$bin" "$work/medley.toml" "$work/server.log"
+  start_medley "$bin" "$work/server.log" --config "$work/medley.toml"
   out="$(curl -s -o /dev/null -w '%{http_code} %{time_total}' -H 'content-type: application/json' \
         --data-binary @"$work/largest.json" "http://$addr/v1/rerank")"
   peak=$(awk '/^VmHWM/ {print $2}' "/proc/$server_pid/status")

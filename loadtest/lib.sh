@@ -1,17 +1,20 @@
-# Shared by the loadtest scripts; source it, do not run it.
+# Shared by the loadtest and HTTP bench scripts; source it, do not run it.
 
-# start_medley BIN CONFIG LOG: starts `BIN serve --config CONFIG` in the background, logging to
-# LOG, and waits (up to 10 s) for its public address. Sets server_pid and addr; exits 1 with the
-# log if the server never says where it listens.
+# start_medley BIN LOG [ARGS...]: starts `BIN serve ARGS...` in the background, logging to LOG,
+# and waits (up to 10 s) for the addresses it binds. Sets server_pid, addr (public) and admin
+# (private); exits 1 with the log if the server never says where it listens.
 start_medley() {
-  local bin="$1" config="$2" log="$3"
+  local bin="$1" log="$2"
+  shift 2
   : > "$log"
-  "$bin" serve --config "$config" 2> "$log" &
+  "$bin" serve "$@" 2> "$log" &
   server_pid=$!
   addr=""
+  admin=""
   for _ in $(seq 1 100); do
     addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
-    [ -n "$addr" ] && return 0
+    admin="$(sed -n 's/.* admin_listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
+    [ -n "$addr" ] && [ -n "$admin" ] && return 0
     sleep 0.1
   done
   echo "the server did not start:" >&2

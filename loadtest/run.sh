@@ -55,7 +55,7 @@ lambda = $LAMBDA
 k = $K
 EOF
 $bin check-config "$work/medley.toml" >/dev/null
-start_medley "$bin" "$work/medley.toml" "$work/server.log"
+start_medley "$bin" "$work/server.log" --config "$work/medley.toml"
 url="http://$addr/v1/rerank"
 
 rss_kib() { awk '/^VmRSS/ {print $2}' "/proc/$server_pid/status"; }

@@ -8,17 +8,13 @@ cd "$(dirname "$0")/../.."
 here=benches/http
 dur="${DURATION:-10}"
 command -v wrk >/dev/null || { sudo_=""; [ "$(id -u)" -ne 0 ] && sudo_=sudo; $sudo_ apt-get install -y -qq wrk >/dev/null; }
-cargo build --release --locked --bin medley -q
-tmp="$(mktemp -d)"
-python3 $here/make_requests.py "$tmp" "$@"
-ls -l "$tmp" | awk 'NR>1 {print $9, $5, "bytes"}'
-log="$tmp/server.log"
-target/release/medley serve --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0 2>"$log" &
-pid=$!
-trap 'kill $pid 2>/dev/null || true; rm -rf "$tmp"' EXIT
-for _ in $(seq 1 100); do addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"; [ -n "$addr" ] && break; sleep 0.1; done
+. loadtest/lib.sh
+prepare
+python3 $here/make_requests.py "$work" "$@"
+ls -l "$work" | awk 'NR>1 {print $9, $5, "bytes"}'
+start_medley "$bin" "$work/server.log" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0
 for body in json b64; do
-  BODY="$tmp/rerank-$body.json" wrk -t1 -c1 -d2s -s $here/post.lua "http://$addr/v1/rerank" >/dev/null  # warm-up
+  BODY="$work/rerank-$body.json" wrk -t1 -c1 -d2s -s $here/post.lua "http://$addr/v1/rerank" >/dev/null  # warm-up
   printf '%-5s ' "$body"
-  BODY="$tmp/rerank-$body.json" wrk -t1 -c1 -d"${dur}s" -s $here/post.lua "http://$addr/v1/rerank" | tail -1
+  BODY="$work/rerank-$body.json" wrk -t1 -c1 -d"${dur}s" -s $here/post.lua "http://$addr/v1/rerank" | tail -1
 done

@@ -7,8 +7,9 @@ cd "$(dirname "$0")/../.."
 here=benches/http
 dur="${DURATION:-10}"
 command -v wrk >/dev/null || { s=""; [ "$(id -u)" -ne 0 ] && s=sudo; $s apt-get install -y -qq wrk >/dev/null; }
-cargo build --release --locked --bin medley -q
-tmp="$(mktemp -d)"
+. loadtest/lib.sh
+prepare
+tmp="$work"
 python3 $here/make_requests.py "$tmp" "$@"
 cat > "$tmp/shadow.toml" <<'TOML'
 [slices.default]
@@ -32,15 +33,7 @@ TOML
 for s in on off; do
   python3 -c "import json,sys; b=json.load(open('$tmp/rerank-b64.json')); b['slice']='$s'; json.dump(b, open('$tmp/$s.json','w'))"
 done
-log="$tmp/server.log"
-target/release/medley serve --config "$tmp/shadow.toml" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0 2>"$log" &
-pid=$!
-trap 'kill $pid 2>/dev/null || true; rm -rf "$tmp"' EXIT
-for _ in $(seq 1 100); do
-  addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
-  admin="$(sed -n 's/.*admin_listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
-  [ -n "$addr" ] && break; sleep 0.1
-done
+start_medley "$bin" "$tmp/server.log" --config "$tmp/shadow.toml" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0
 for s in off on off on; do
   BODY="$tmp/$s.json" wrk -t1 -c1 -d2s -s $here/post.lua "http://$addr/v1/rerank" >/dev/null
   printf 'sample_rate=%s ' "$([ $s = on ] && echo 1.0 || echo 0.0)"
