@@ -41,16 +41,17 @@ pub const EPSILON: f64 = 1e-9;
 /// do here (`d_j² ≥ EPSILON` at every pick): L. Giraud, J. Langou, M. Rozložník, "The loss of
 /// orthogonality in the Gram–Schmidt orthogonalization process", Computers & Mathematics with
 /// Applications 50, 2005 ("twice is enough"; citation from memory). Classical rather than
-/// modified, so each sweep's dot products are independent and share loads. The slow `reference::dpp` re-factorises `S_Y` with a textbook Cholesky
-/// at every step, and the tests hold this kernel to it and to nalgebra determinants.
+/// modified, so each sweep's dot products are independent and share loads. The slow
+/// `reference::dpp` re-factorises `S_Y` with a textbook Cholesky at every step, and the tests
+/// hold this kernel to it and to nalgebra determinants.
 ///
 /// Evaluated lazily (M. Minoux, "Accelerated greedy algorithms for maximizing submodular set
 /// functions", Optimization Techniques, LNCS 7, 1978): the objective is a modular term plus
 /// `λ·ln det`, which is submodular, so each candidate's value only falls as the slate grows. A
 /// max-heap holds stale values as upper bounds; only the candidate on top is brought up to date
 /// (projected on the basis vectors it has not seen) and put back in place, and it is taken once
-/// it is on top with a fresh value. The picks are exactly those of the eager algorithm (same objective,
-/// same tie rule).
+/// it is on top with a fresh value. The picks are exactly those of the eager algorithm (same
+/// objective, same tie rule).
 ///
 /// # Complexity
 /// Worst case O(N·k·d + k²·d) time: every candidate refreshed at every step, plus building each
