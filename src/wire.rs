@@ -38,29 +38,29 @@ pub struct RerankRequest {
     pub candidates: Vec<WireCandidate>,
 }
 
-/// A `T` that must arrive as a JSON object. serde's derived structs also accept an array of the
-/// fields in order (`["a", 0.5]` for a candidate); the wire contract has named fields only.
-struct ObjectOnly<T>(T);
+/// A candidate that must arrive as a JSON object. serde's derived structs also accept an array
+/// of the fields in order (`["a", 0.5]`); the wire contract has named fields only.
+struct CandidateObject(WireCandidate);
 
-impl<'de, T: Deserialize<'de>> Deserialize<'de> for ObjectOnly<T> {
+impl<'de> Deserialize<'de> for CandidateObject {
     fn deserialize<D: serde::Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
-        struct Object<T>(std::marker::PhantomData<T>);
-        impl<'de, T: Deserialize<'de>> serde::de::Visitor<'de> for Object<T> {
-            type Value = T;
+        struct Object;
+        impl<'de> serde::de::Visitor<'de> for Object {
+            type Value = WireCandidate;
             fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
                 f.write_str("a candidate object, {\"id\": ..., \"score\": ...}")
             }
-            fn visit_map<A: serde::de::MapAccess<'de>>(self, map: A) -> Result<T, A::Error> {
-                T::deserialize(serde::de::value::MapAccessDeserializer::new(map))
+            fn visit_map<A: serde::de::MapAccess<'de>>(self, map: A) -> Result<WireCandidate, A::Error> {
+                WireCandidate::deserialize(serde::de::value::MapAccessDeserializer::new(map))
             }
         }
-        deserializer.deserialize_map(Object(std::marker::PhantomData)).map(ObjectOnly)
+        deserializer.deserialize_map(Object).map(CandidateObject)
     }
 }
 
 /// `candidates`: an array of objects.
 fn objects<'de, D: serde::Deserializer<'de>>(deserializer: D) -> Result<Vec<WireCandidate>, D::Error> {
-    let wrapped = Vec::<ObjectOnly<WireCandidate>>::deserialize(deserializer)?;
+    let wrapped = Vec::<CandidateObject>::deserialize(deserializer)?;
     Ok(wrapped.into_iter().map(|c| c.0).collect())
 }
 
