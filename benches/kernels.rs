@@ -2,6 +2,7 @@
 //! GEMV of the same shape from the `gemm` crate (a tuned, runtime-dispatched SIMD library) as the
 //! practical roofline for this memory-bound work.
 //!
+//! `dpp` is the default (screened) strategy and `dpp_lazy` the lazy one, both exact.
 //! Throughput is reported as elements = floating-point operations (2 per multiply-add), with the
 //! nominal counts N·k·d + 2·k²·d multiply-adds for DPP (every candidate projected on every basis
 //! vector, plus two Gram–Schmidt sweeps per basis vector), N·k·d for MMR and the GEMV. Run
@@ -9,7 +10,7 @@
 #![allow(unsafe_code, missing_docs)]
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
-use medley::diversify::{reference, Diversifier, Dpp, Mmr, Quota, Relevance};
+use medley::diversify::{reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance};
 use medley::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 use std::hint::black_box;
 use std::time::Duration;
@@ -60,6 +61,14 @@ fn kernels(c: &mut Criterion) {
                 b.iter(|| black_box(algo.select(black_box(&input), &params, &mut ws).unwrap()))
             });
         }
+        // The lazy strategy, which `dpp` (screened on these slates) replaced as the default.
+        group.throughput(Throughput::Elements(macs(2 * k * k * d)));
+        let mut ws = Workspace::new();
+        group.bench_function(BenchmarkId::from_parameter("dpp_lazy"), |b| {
+            b.iter(|| {
+                black_box(Dpp.select_with(DppStrategy::Lazy, black_box(&input), &params, &mut ws).unwrap())
+            })
+        });
         // Roofline: k GEMVs of the same N × d f32 matrix (row-major) with a d-vector.
         let rows = input.embeddings().unwrap().as_slice().to_vec();
         let x: Vec<f32> = input.embeddings().unwrap().row(0).to_vec();

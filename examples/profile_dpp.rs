@@ -2,9 +2,11 @@
 //! `perf record ./target/release/examples/profile_dpp` when tuning the kernel.
 //!
 //! Run: `cargo run --release --example profile_dpp -- [N D K [clustered]]` (default 2000 128 100,
-//! unclustered random rows; `clustered` uses the bench's 8-cluster slates).
+//! unclustered random rows; `clustered` uses the bench's 8-cluster slates). Environment:
+//! `CALLS=n` sets the number of calls (e.g. for a longer `perf record`); `DPP_STRATEGY=lazy` or
+//! `screened` picks a strategy instead of the default `auto`.
 
-use medley::diversify::{Diversifier, Dpp};
+use medley::diversify::{Dpp, DppStrategy};
 use medley::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 
 fn main() {
@@ -12,7 +14,16 @@ fn main() {
     let arg = |i: usize, default: usize| args.get(i).and_then(|a| a.parse().ok()).unwrap_or(default);
     let (n, d, k) = (arg(0, 2_000), arg(1, 128), arg(2, 100) as u64);
     let clustered = args.get(3).is_some_and(|a| a == "clustered");
-    let calls = (400_000_000 / (n * (d + k as usize) * k as usize)).clamp(20, 20_000) as u32;
+    let calls = std::env::var("CALLS")
+        .ok()
+        .and_then(|c| c.parse().ok())
+        .unwrap_or_else(|| (400_000_000 / (n * (d + k as usize) * k as usize)).clamp(20, 20_000) as u32);
+    let strategy = match std::env::var("DPP_STRATEGY").as_deref() {
+        Ok("lazy") => DppStrategy::Lazy,
+        Ok("screened") => DppStrategy::Screened,
+        Ok("auto") | Err(_) => DppStrategy::Auto,
+        Ok(other) => panic!("DPP_STRATEGY={other}: expected auto, lazy or screened"),
+    };
     let mut state = 1u64;
     let mut next = || {
         state ^= state << 13;
@@ -38,7 +49,9 @@ fn main() {
     let mut ws = Workspace::new();
     let start = std::time::Instant::now();
     for _ in 0..calls {
-        std::hint::black_box(Dpp.select(&input, &params, &mut ws).expect("embeddings present"));
+        std::hint::black_box(
+            Dpp.select_with(strategy, &input, &params, &mut ws).expect("embeddings present"),
+        );
     }
     println!("{:?} per call", start.elapsed() / calls);
 }

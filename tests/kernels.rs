@@ -5,12 +5,19 @@
 mod common;
 
 use common::{candidates, slate, Rng};
-use medley::diversify::{self, reference, Diversifier, Dpp, Mmr, Quota, Relevance, EPSILON};
+use medley::diversify::{self, reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance, EPSILON};
 use medley::{measures, CandidateInput, Limits, Params, RerankInput, Workspace};
 use nalgebra::DMatrix;
 use proptest::prelude::*;
 
 const ALL: [&dyn Diversifier; 4] = [&Relevance, &Mmr, &Dpp, &Quota];
+
+/// Both exact DPP strategies: every DPP reference check runs on each.
+const STRATEGIES: [DppStrategy; 2] = [DppStrategy::Lazy, DppStrategy::Screened];
+
+fn dpp(strategy: DppStrategy, input: &RerankInput, p: &Params) -> medley::Selection {
+    Dpp.select_with(strategy, input, p, &mut Workspace::new()).unwrap()
+}
 
 fn params(k: usize, lambda: f64) -> Params {
     Params::new(k as u64, lambda, &Limits::default()).unwrap()
@@ -108,13 +115,15 @@ proptest! {
             let best = (0..input.len()).filter(|i| !prefix.contains(i)).map(obj).fold(f64::NEG_INFINITY, f64::max);
             prop_assert!(obj(pick) >= best - 1e-5, "step {step}: pick {pick} at {} vs best {best}", obj(pick));
         }
-        let fast = Dpp.select(&input, &p, &mut Workspace::new()).unwrap();
         let (slow, slow_gains) = reference::dpp(&input, &p);
-        prop_assert_eq!(&fast.indices, &slow);
-        if lambda > 0.0 {
-            let picked = fast.exhausted_at.unwrap_or(fast.indices.len());
-            for (g, r) in fast.gains[..picked].iter().zip(&slow_gains) {
-                prop_assert!((g - r).abs() < 1e-9, "residual {g} vs {r}");
+        for strategy in STRATEGIES {
+            let fast = dpp(strategy, &input, &p);
+            prop_assert_eq!(&fast.indices, &slow, "{:?}", strategy);
+            if lambda > 0.0 {
+                let picked = fast.exhausted_at.unwrap_or(fast.indices.len());
+                for (g, r) in fast.gains[..picked].iter().zip(&slow_gains) {
+                    prop_assert!((g - r).abs() < 1e-9, "{:?}: residual {} vs {}", strategy, g, r);
+                }
             }
         }
     }
@@ -213,12 +222,12 @@ fn dpp_matches_nalgebra_brute_force_on_hundreds_of_slates() {
         let k = 1 + rng.below(n);
         let input = slate(candidates(&mut rng, n, d, 4));
         for lambda in [0.0, 0.5, 1.0, 0.2 + 0.6 * rng.unit()] {
-            let sel = Dpp.select(&input, &params(k, lambda), &mut Workspace::new()).unwrap();
-            assert_eq!(
-                sel.indices,
-                nalgebra_greedy_dpp(&input, k, lambda),
-                "n={n} d={d} k={k} lambda={lambda}"
-            );
+            let want = nalgebra_greedy_dpp(&input, k, lambda);
+            let sel = dpp(DppStrategy::Lazy, &input, &params(k, lambda));
+            assert_eq!(sel.indices, want, "lazy: n={n} d={d} k={k} lambda={lambda}");
+            let screened = dpp(DppStrategy::Screened, &input, &params(k, lambda));
+            assert_eq!(screened.indices, want, "screened: n={n} d={d} k={k} lambda={lambda}");
+            assert_eq!(screened.exhausted_at, sel.exhausted_at);
             if lambda > 0.0 {
                 // ln det of the chosen set's Gram matrix = Σ ln d² recorded along the way.
                 let picked = &sel.indices[..sel.exhausted_at.unwrap_or(sel.indices.len())];
@@ -271,22 +280,30 @@ fn edge_k_above_n_returns_everything() {
 fn edge_one_dimension_exhausts_after_one_pick() {
     // d = 1: every unit row is ±1, so after one pick every residual is 0 and the rest is by score.
     let input = slate(candidates(&mut Rng(5), 6, 1, 2));
-    let sel = Dpp.select(&input, &params(4, 0.9), &mut Workspace::new()).unwrap();
-    assert_eq!(sel.exhausted_at, Some(1));
-    let rest: Vec<usize> = reference::relevance(&input, &params(6, 0.0))
-        .into_iter()
-        .filter(|&i| i != sel.indices[0])
-        .take(3)
-        .collect();
-    assert_eq!(&sel.indices[1..], &rest[..]);
+    for strategy in STRATEGIES {
+        let sel = dpp(strategy, &input, &params(4, 0.9));
+        assert_eq!(sel.exhausted_at, Some(1), "{strategy:?}");
+        let rest: Vec<usize> = reference::relevance(&input, &params(6, 0.0))
+            .into_iter()
+            .filter(|&i| i != sel.indices[0])
+            .take(3)
+            .collect();
+        assert_eq!(&sel.indices[1..], &rest[..], "{strategy:?}");
+    }
 }
 
 #[test]
 fn edge_dimension_below_k_fills_by_score() {
-    let input = slate(candidates(&mut Rng(8), 30, 3, 3));
-    let sel = Dpp.select(&input, &params(10, 0.7), &mut Workspace::new()).unwrap();
-    assert_eq!(sel.exhausted_at, Some(3), "rank of 3-dimensional rows is 3");
-    assert_valid(&sel.indices, 30, 10, "dpp");
+    // 300 candidates: several screening panels, all exhausted at once after three picks.
+    let input = slate(candidates(&mut Rng(8), 300, 3, 3));
+    let mut slates = Vec::new();
+    for strategy in STRATEGIES {
+        let sel = dpp(strategy, &input, &params(10, 0.7));
+        assert_eq!(sel.exhausted_at, Some(3), "{strategy:?}: rank of 3-dimensional rows is 3");
+        assert_valid(&sel.indices, 300, 10, "dpp");
+        slates.push(sel.indices);
+    }
+    assert_eq!(slates[0], slates[1]);
 }
 
 #[test]
@@ -313,9 +330,14 @@ fn edge_duplicate_embeddings_are_never_both_picked_by_dpp() {
     cands[0].score = 10.0;
     cands[1].score = 9.0;
     let input = slate(cands);
-    let sel = Dpp.select(&input, &params(5, 0.5), &mut Workspace::new()).unwrap();
-    assert_eq!(sel.indices[0], 0);
-    assert!(!sel.indices[..sel.exhausted_at.unwrap_or(5)].contains(&1), "twin has zero residual");
+    for strategy in STRATEGIES {
+        let sel = dpp(strategy, &input, &params(5, 0.5));
+        assert_eq!(sel.indices[0], 0);
+        assert!(
+            !sel.indices[..sel.exhausted_at.unwrap_or(5)].contains(&1),
+            "{strategy:?}: twin has zero residual"
+        );
+    }
     // MMR sees the twin at similarity 1 and pushes it down.
     assert_ne!(run(&Mmr, &input, &params(2, 0.5))[1], 1);
 }
@@ -329,6 +351,51 @@ fn edge_large_slates_run() {
         for algo in ALL {
             let out = run(algo, input, &params(20, 0.5));
             assert_valid(&out, input.len(), 20, algo.name());
+        }
+        let [lazy, screened] = STRATEGIES.map(|st| dpp(st, input, &params(20, 0.5)).indices);
+        assert_eq!(lazy, screened, "N={} d={}", input.len(), input.embeddings().unwrap().dim());
+    }
+}
+
+/// The screened strategy certifies each pick with f32 bounds; stress those bounds where they are
+/// tight: near-duplicate rows (residuals near 0 and near-equal objectives), duplicated rows with
+/// distinct scores, several panels with a ragged last one, caps, lambda near the screening range's
+/// edge (α·range = 40 at lambda ≈ 0.0244) and d up to 300. The lazy strategy, itself held to
+/// nalgebra and the slow reference above, is the oracle: the picks must be identical.
+#[test]
+fn dpp_strategies_agree_on_near_duplicate_slates() {
+    let mut rng = Rng(2024);
+    for case in 0..60 {
+        let n = 1 + rng.below(300);
+        let d = [2, 5, 16, 64, 300][case % 5];
+        let groups = 1 + rng.below(5);
+        let mut cands = candidates(&mut rng, n, d, groups);
+        // Every third candidate copies or nearly copies an earlier one.
+        for i in (3..n).step_by(3) {
+            let src = rng.below(i);
+            let noise = [0.0, 1e-6, 1e-3][rng.below(3)];
+            let copy: Vec<f32> = cands[src]
+                .embedding
+                .as_ref()
+                .unwrap()
+                .iter()
+                .map(|&x| x + (noise * rng.normal()) as f32)
+                .collect();
+            cands[i].embedding = Some(copy);
+        }
+        let input = slate(cands);
+        let k = 1 + rng.below(n.min(80));
+        for lambda in [0.025, 0.1, 0.5, 0.9, 1.0] {
+            let cap = [None, Some(1 + rng.below(4))][rng.below(2)];
+            let p = Params::new(k as u64, lambda, &Limits::default()).unwrap().with_max_per_category(cap);
+            let lazy = dpp(DppStrategy::Lazy, &input, &p);
+            let screened = dpp(DppStrategy::Screened, &input, &p);
+            let what = format!("case {case}: n={n} d={d} k={k} lambda={lambda} cap={cap:?}");
+            assert_eq!(screened.indices, lazy.indices, "{what}");
+            assert_eq!(screened.exhausted_at, lazy.exhausted_at, "{what}");
+            for (a, b) in screened.gains.iter().zip(&lazy.gains) {
+                assert!((a - b).abs() < 1e-12, "{what}: gain {a} vs {b}");
+            }
         }
     }
 }

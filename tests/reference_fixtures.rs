@@ -3,7 +3,7 @@
 //! numpy.linalg.slogdet) picks, category entropy from scipy.stats.entropy(base=2), and Gini from the
 //! mean-absolute-difference definition.
 
-use medley::diversify::{Diversifier, Dpp, Mmr};
+use medley::diversify::{Diversifier, Dpp, DppStrategy, Mmr};
 use medley::{measures, CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 use serde_json::Value;
 
@@ -49,6 +49,15 @@ fn mmr_and_dpp_match_numpy_reference_picks() {
             for (name, algo) in [("mmr", &Mmr as &dyn Diversifier), ("dpp", &Dpp)] {
                 let got = algo.select(&input, &p, &mut ws).unwrap().indices;
                 assert_eq!(got, indices(&expected[name]), "case {} {name} lambda={lambda}", case["case"]);
+            }
+            for strategy in [DppStrategy::Lazy, DppStrategy::Screened] {
+                let got = Dpp.select_with(strategy, &input, &p, &mut ws).unwrap().indices;
+                assert_eq!(
+                    got,
+                    indices(&expected["dpp"]),
+                    "case {} dpp {strategy:?} lambda={lambda}",
+                    case["case"]
+                );
             }
         }
     }

@@ -17,7 +17,7 @@
 pub mod reference;
 mod similarity;
 
-pub use dpp::EPSILON;
+pub use dpp::{DppStrategy, EPSILON};
 
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -118,6 +118,8 @@ pub struct Workspace {
     basis: Vec<f64>,
     /// DPP: the vector being orthogonalised.
     scratch: Vec<f64>,
+    /// DPP (screened): panels, f32 bounds and the f32 basis.
+    screen: dpp::ScreenBuffers,
     /// Items taken per group, for caps and quotas.
     group_taken: Vec<usize>,
     /// Set by whoever waits for the result when it stops waiting; the long kernels (MMR, DPP)
@@ -166,6 +168,7 @@ impl Workspace {
                 + self.scratch.capacity())
                 * size_of::<f64>()
             + self.heap.capacity() * size_of::<Bound>()
+            + self.screen.retained_bytes()
     }
 
     /// Frees every buffer when together they hold more than `max_bytes`, so one huge slate does
