@@ -24,8 +24,9 @@ use crate::diversify::Workspace;
 pub const INLINE_WORK_BELOW: u64 = 100_000;
 
 /// Scratch space a thread keeps between jobs. A DPP slate of (N, d) = (5 000, 256) needs about
-/// 10 MiB and stays cached; the largest slates the default limits allow need about 25 MiB, which
-/// is freed after the job instead of staying pinned in every pool thread that ever ran one.
+/// 6 MiB (10 MiB on the lazy strategy) and stays cached; the largest slates the default limits
+/// allow need up to about 25 MiB, which is freed after the job instead of staying pinned in every
+/// pool thread that ever ran one.
 pub const RETAIN_WORKSPACE_BYTES: usize = 16 << 20;
 
 thread_local! {
@@ -210,10 +211,10 @@ mod tests {
     #[tokio::test]
     async fn a_huge_slate_does_not_pin_its_scratch_space() {
         let pool = Pool::new(1, 10).unwrap();
-        // 500 × 64 rows widened to f64 are 256 KiB: kept for the next call.
-        assert!(retained_after_dpp(&pool, 500, 64).await >= 500 * 64 * 8);
-        // 9 000 × 256 are 18 MiB, over RETAIN_WORKSPACE_BYTES: freed once the job is done.
-        const { assert!(9_000 * 256 * 8 > RETAIN_WORKSPACE_BYTES) };
-        assert_eq!(retained_after_dpp(&pool, 9_000, 256).await, 0);
+        // 500 × 64 rows in f32 screening panels are 128 KiB: kept for the next call.
+        assert!(retained_after_dpp(&pool, 500, 64).await >= 500 * 64 * 4);
+        // 9 000 × 512 are 18 MiB, over RETAIN_WORKSPACE_BYTES: freed once the job is done.
+        const { assert!(9_000 * 512 * 4 > RETAIN_WORKSPACE_BYTES) };
+        assert_eq!(retained_after_dpp(&pool, 9_000, 512).await, 0);
     }
 }

@@ -106,11 +106,11 @@ pub struct Workspace {
     taken: Vec<bool>,
     /// Candidate indices in some order (relevance order, per-group queues).
     order: Vec<usize>,
-    /// DPP: unit rows widened to f64, row-major N × d.
+    /// DPP (lazy): unit rows widened to f64, row-major N × d.
     wide: Vec<f64>,
-    /// Lazy kernels: how many picks each candidate's state has seen.
+    /// MMR and DPP: how many picks each candidate's exact state has seen.
     filled: Vec<usize>,
-    /// Lazy kernels: stale upper bounds.
+    /// MMR and DPP (lazy): stale upper bounds.
     heap: std::collections::BinaryHeap<Bound>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
