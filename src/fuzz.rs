@@ -133,6 +133,16 @@ pub fn diversifiers(bytes: &[u8]) {
             assert_eq!(first.indices, relevance_at_zero, "{name}: lambda = 0 is not relevance");
         }
     }
+    // The registry's `dpp` runs the screened strategy where it applies; hold the lazy one to
+    // the same contract. (Their picks may differ where exact ties meet different rounding, which
+    // these quantised rows and scores make common, so only validity is compared.)
+    if input.embeddings().is_some() {
+        let lazy = diversify::Dpp
+            .select_with(diversify::DppStrategy::Lazy, &input, &params, &mut ws)
+            .expect("embeddings present");
+        check_selection(&input, &lazy.indices, params.k(), cap, "dpp (lazy)");
+        assert_eq!(lazy.indices.len(), expected_len(&input, params.k(), cap), "dpp (lazy): length");
+    }
 }
 
 /// The slate length every diversifier must reach: `min(k, N)`, or under a category cap the
