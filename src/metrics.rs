@@ -41,6 +41,11 @@ pub struct Metrics {
     pub panics: IntCounter,
     /// `medley_shed_total`: requests refused with 503 because `max_in_flight` were running.
     pub shed: IntCounter,
+    /// `medley_body_budget_refused_total`: requests (or stream lines) refused with 503 because
+    /// their body would pass `max_inflight_body_bytes`.
+    pub body_budget_refused: IntCounter,
+    /// `medley_inflight_body_bytes`: request body bytes reserved now (set at scrape time).
+    pub inflight_body_bytes: IntGauge,
     /// `medley_in_flight_requests`: requests holding a concurrency permit.
     pub in_flight: IntGauge,
     /// `medley_config_generation`: generation of the config being served.
@@ -55,6 +60,9 @@ pub struct Metrics {
     pub config_reloads: IntCounterVec,
     /// `medley_config_reload_failures_total{trigger}`: refused configs (the old one kept serving).
     pub config_reload_failures: IntCounterVec,
+    /// `medley_config_reload_unchanged_total{trigger}`: reloads that validated to the config
+    /// already serving (same digest), so nothing was swapped.
+    pub config_reload_unchanged: IntCounterVec,
     /// `medley_shadow_runs_total{slice}`.
     pub shadow_runs: IntCounterVec,
     /// `medley_shadow_dropped_total{slice}`: shadow jobs dropped because the queue was full.
@@ -136,6 +144,14 @@ impl Metrics {
             "medley_shed_total",
             "Requests refused with 503 because the concurrency limit was reached.",
         ));
+        let body_budget_refused = must(IntCounter::new(
+            "medley_body_budget_refused_total",
+            "Requests and stream lines refused with 503 because their body would pass max_inflight_body_bytes.",
+        ));
+        let inflight_body_bytes = must(IntGauge::new(
+            "medley_inflight_body_bytes",
+            "Request body bytes reserved against max_inflight_body_bytes.",
+        ));
         let in_flight = must(IntGauge::new("medley_in_flight_requests", "Requests being processed."));
         let config_generation =
             must(IntGauge::new("medley_config_generation", "Generation of the configuration being served."));
@@ -161,6 +177,11 @@ impl Metrics {
         let config_reload_failures = counter(
             "medley_config_reload_failures_total",
             "Configurations refused (the previous one kept serving), by trigger.",
+            "trigger",
+        );
+        let config_reload_unchanged = counter(
+            "medley_config_reload_unchanged_total",
+            "Reloads that found the configuration already serving (nothing swapped), by trigger.",
             "trigger",
         );
         let shadow_runs = counter("medley_shadow_runs_total", "Shadow runs completed.", "slice");
@@ -216,6 +237,8 @@ impl Metrics {
         reg(Box::new(candidates.clone()));
         reg(Box::new(panics.clone()));
         reg(Box::new(shed.clone()));
+        reg(Box::new(body_budget_refused.clone()));
+        reg(Box::new(inflight_body_bytes.clone()));
         reg(Box::new(in_flight.clone()));
         reg(Box::new(config_generation.clone()));
         reg(Box::new(config_info.clone()));
@@ -223,6 +246,7 @@ impl Metrics {
         reg(Box::new(pool_threads.clone()));
         reg(Box::new(config_reloads.clone()));
         reg(Box::new(config_reload_failures.clone()));
+        reg(Box::new(config_reload_unchanged.clone()));
         reg(Box::new(shadow_runs.clone()));
         reg(Box::new(shadow_dropped.clone()));
         reg(Box::new(shadow_duration.clone()));
@@ -241,6 +265,8 @@ impl Metrics {
             candidates,
             panics,
             shed,
+            body_budget_refused,
+            inflight_body_bytes,
             in_flight,
             config_generation,
             config_info,
@@ -248,6 +274,7 @@ impl Metrics {
             pool_threads,
             config_reloads,
             config_reload_failures,
+            config_reload_unchanged,
             shadow_runs,
             shadow_dropped,
             shadow_duration,

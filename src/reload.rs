@@ -2,20 +2,24 @@
 //! restart.
 //!
 //! The live [`Engine`] sits behind an `ArcSwap`. A reload (file change, SIGHUP, `POST
-//! /admin/reload`) or a runtime slice change (`PUT`/`DELETE /admin/slices/{name}`) parses and
-//! validates a complete new config on the side, with the same code as `medley check-config`, and
-//! only then stores it with the next generation number. A config that fails validation is refused
-//! with the message naming the field, counted in `medley_config_reload_failures_total`, and the
-//! old engine keeps serving. Requests already running keep the snapshot they loaded.
+//! /admin/reload`) first validates the file on its own, exactly as `medley check-config` does,
+//! then layers the runtime slices over it and validates the result; only then is it stored with
+//! the next generation number. A file that fails either step is refused with the message naming
+//! the field, counted in `medley_config_reload_failures_total`, and the old engine keeps
+//! serving. A result whose digest equals the live one is not a change: nothing is swapped and
+//! the generation stays (so re-reading an unchanged file, or a second SIGHUP, is free). Requests
+//! already running keep the snapshot they loaded.
 //!
 //! Runtime slices (set through the admin API) are layered over the file's slices of the same
 //! name, on every reload, until deleted. A runtime change rebuilds from the last file that was
-//! accepted, so a broken edit waiting on disk neither blocks it nor sneaks in with it. With `--overlay FILE` they are also written to that file
+//! valid on its own, so a broken edit waiting on disk neither blocks it nor sneaks in with it
+//! (not even one that a runtime slice of the same name would hide). With `--overlay FILE` they are also written to that file
 //! atomically (a temporary file in the same directory, synced, then renamed over it) and read back
 //! at start, so they survive a restart; without it they live until the process exits, and the
 //! admin API says so in every answer.
 //!
-//! Settings fixed at start: the listeners, `pool_threads` and `max_in_flight` (a reload that
+//! Settings fixed at start: the listeners, `pool_threads`, `max_in_flight`,
+//! `max_inflight_body_bytes`, `header_timeout_ms` and `max_connections` (a reload that
 //! changes them is served with the new values everywhere else, and a warning is logged).
 
 use std::collections::BTreeMap;
@@ -113,13 +117,25 @@ impl ConfigSource {
         toml::from_str(&text).map_err(|e| ConfigError::Parse(e.to_string()))
     }
 
-    /// Reads the file (or the embedded default), layers `runtime` slices over it, validates, and
-    /// applies the listener overrides.
+    /// Reads the file (or the embedded default), validates it on its own, layers `runtime`
+    /// slices over it, validates again, and applies the listener overrides.
     ///
     /// # Errors
     /// The first [`ConfigError`], naming the file or the field.
     pub fn load(&self, runtime: &BTreeMap<String, RawSlice>) -> Result<Config, ConfigError> {
-        self.build(self.read_file()?, runtime)
+        self.read_valid_file().and_then(|file| self.build(file, runtime))
+    }
+
+    /// Reads the file (or the embedded default) and validates it on its own, as `medley
+    /// check-config` does, without runtime slices: a slice the file breaks must not pass because
+    /// a runtime slice of the same name hides it.
+    ///
+    /// # Errors
+    /// The first [`ConfigError`], naming the file or the field.
+    pub fn read_valid_file(&self) -> Result<RawConfig, ConfigError> {
+        let file = self.read_file()?;
+        Config::from_raw(file.clone())?;
+        Ok(file)
     }
 
     /// Layers `runtime` slices over a parsed file, validates, and applies the listener overrides.
@@ -145,11 +161,22 @@ impl ConfigSource {
     }
 }
 
+/// The outcome of a reload.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Reloaded {
+    /// Generation now serving.
+    pub generation: u64,
+    /// False when the validated config equals the live one (same digest): nothing was swapped.
+    pub changed: bool,
+}
+
 /// The outcome of a runtime slice change.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct SliceChange {
     /// Generation now serving.
     pub generation: u64,
+    /// False when the resulting config equals the live one (same digest): nothing was swapped.
+    pub changed: bool,
     /// Whether the change was written to the overlay file (survives a restart).
     pub persisted: bool,
 }
@@ -181,9 +208,9 @@ pub struct Reloader {
     source: ConfigSource,
     engine: Arc<ArcSwap<Engine>>,
     metrics: Arc<Metrics>,
-    /// The file as last accepted, and the runtime slices layered over it. A runtime change
-    /// rebuilds from the accepted file, not the disk, so a broken edit waiting on disk cannot
-    /// block it. The mutex also serialises swaps, so generations never race; it is a std mutex
+    /// The file as last accepted (valid on its own), and the runtime slices layered over it. A
+    /// runtime change rebuilds from the accepted file, not the disk, so a broken edit waiting on
+    /// disk cannot block it. The mutex also serialises swaps, so generations never race; it is a std mutex
     /// because every holder does short synchronous work (read a small file, validate).
     layers: Mutex<Layers>,
 }
@@ -223,19 +250,27 @@ impl Reloader {
         self.layers().runtime.keys().cloned().collect()
     }
 
-    fn store(&self, config: Config, trigger: Trigger) -> u64 {
+    /// Swaps `config` in as the next generation, unless it serves exactly what the live engine
+    /// serves (same digest), which is no change at all.
+    fn store(&self, config: Config, trigger: Trigger) -> Reloaded {
         let old = self.engine.load_full();
+        if config.digest() == old.digest() {
+            self.metrics.config_reload_unchanged.with_label_values(&[trigger.label()]).inc();
+            tracing::debug!(generation = old.generation(), trigger = trigger.label(), "config unchanged");
+            return Reloaded { generation: old.generation(), changed: false };
+        }
         let fixed = &old.config().server;
         let new = &config.server;
         if new.listen != fixed.listen
             || new.admin_listen != fixed.admin_listen
             || new.pool_threads != fixed.pool_threads
             || new.max_in_flight != fixed.max_in_flight
+            || new.max_inflight_body_bytes != fixed.max_inflight_body_bytes
             || new.header_timeout != fixed.header_timeout
             || new.max_connections != fixed.max_connections
         {
             tracing::warn!(
-                "listeners, pool_threads, max_in_flight, header_timeout_ms and max_connections change only on restart; keeping the running ones"
+                "listeners, pool_threads, max_in_flight, max_inflight_body_bytes, header_timeout_ms and max_connections change only on restart; keeping the running ones"
             );
         }
         let generation = old.generation() + 1;
@@ -244,7 +279,7 @@ impl Reloader {
         self.engine.store(engine);
         self.metrics.config_reloads.with_label_values(&[trigger.label()]).inc();
         tracing::info!(generation, trigger = trigger.label(), "config swapped");
-        generation
+        Reloaded { generation, changed: true }
     }
 
     fn refuse(&self, trigger: Trigger, e: &ConfigError) {
@@ -252,15 +287,17 @@ impl Reloader {
         tracing::warn!(trigger = trigger.label(), error = %e, "config refused; the previous one keeps serving");
     }
 
-    /// Re-reads the source and swaps the result in.
+    /// Re-reads the source, validates the file alone and then with the runtime slices, and swaps
+    /// the result in when it differs from the live config.
     ///
     /// # Errors
-    /// The validation error; the old config keeps serving.
-    pub fn reload(&self, trigger: Trigger) -> Result<u64, ConfigError> {
+    /// The validation error; the old config keeps serving, and later runtime changes build on
+    /// the last file that was valid.
+    pub fn reload(&self, trigger: Trigger) -> Result<Reloaded, ConfigError> {
         let mut layers = self.layers();
         let built = self
             .source
-            .read_file()
+            .read_valid_file()
             .and_then(|file| Ok((self.source.build(file.clone(), &layers.runtime)?, file)));
         match built {
             Ok((config, file)) => {
@@ -323,7 +360,8 @@ impl Reloader {
             }
         };
         layers.runtime = next;
-        Ok(SliceChange { generation: self.store(config, Trigger::Slice), persisted })
+        let Reloaded { generation, changed } = self.store(config, Trigger::Slice);
+        Ok(SliceChange { generation, changed, persisted })
     }
 }
 
@@ -352,7 +390,9 @@ pub const DEBOUNCE: Duration = Duration::from_millis(200);
 /// file's own name count, and so do events for `..data`: a Kubernetes ConfigMap volume exposes
 /// each key as a symlink through `..data`, and updates it by renaming a new `..data` symlink
 /// into place, so the file's own name never sees an event (config/k8s/ relies on this). Events
-/// for other names in the directory are ignored.
+/// for other names in the directory are ignored, and so are events that cannot change content
+/// ([`content_may_change`]): reading the file during a reload opens and closes it, and reacting
+/// to that would reload forever.
 ///
 /// # Errors
 /// When the watch cannot be set up (the directory is gone, or inotify limits are reached).
@@ -370,7 +410,8 @@ pub fn watch(
     let (tx, mut rx) = tokio::sync::mpsc::unbounded_channel();
     let mut watcher = notify::recommended_watcher(move |event: notify::Result<notify::Event>| {
         if let Ok(event) = event {
-            if event.paths.iter().any(|p| watched_name(p, name.as_deref())) {
+            if content_may_change(&event.kind) && event.paths.iter().any(|p| watched_name(p, name.as_deref()))
+            {
                 let _ = tx.send(());
             }
         }
@@ -396,6 +437,24 @@ pub fn watch(
             }
         }
     })))
+}
+
+/// Whether an event of this kind can change what the file holds: creation, a write, a rename or
+/// move (the `..data` swap is one), removal, and the queue-overflow rescan (`Other` with the
+/// rescan flag, after which anything may have happened). Opening, reading and closing the file
+/// (`Access`), and `chmod`/`touch` (`Modify(Metadata)`), cannot.
+#[must_use]
+pub fn content_may_change(kind: &notify::EventKind) -> bool {
+    use notify::event::ModifyKind;
+    use notify::EventKind;
+    match kind {
+        EventKind::Access(_) | EventKind::Modify(ModifyKind::Metadata(_)) => false,
+        EventKind::Create(_)
+        | EventKind::Modify(_)
+        | EventKind::Remove(_)
+        | EventKind::Any
+        | EventKind::Other => true,
+    }
 }
 
 /// Whether an event on `path` may have changed the config file called `name`.

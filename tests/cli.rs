@@ -7,18 +7,10 @@ use std::io::{BufRead, BufReader, Write};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
+use common::process::{spawn_server, tempdir, KillOnDrop, BIN};
 use common::server::request;
 use common::Rng;
 use serde_json::{json, Value};
-
-const BIN: &str = env!("CARGO_BIN_EXE_medley");
-
-fn tempdir(name: &str) -> std::path::PathBuf {
-    let dir = std::env::temp_dir().join(format!("medley-cli-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&dir);
-    std::fs::create_dir_all(&dir).unwrap();
-    dir
-}
 
 #[test]
 fn check_config_accepts_the_samples_and_refuses_bad_files_naming_the_field() {
@@ -148,48 +140,6 @@ fn serve_drains_and_exits_zero_on_sigterm() {
     assert_eq!(exit.code(), Some(0));
 }
 
-/// Kills a spawned server if its test fails before stopping it.
-struct KillOnDrop(u32);
-
-impl Drop for KillOnDrop {
-    fn drop(&mut self) {
-        if std::thread::panicking() {
-            let _ = Command::new("kill").args(["-KILL", &self.0.to_string()]).status();
-        }
-    }
-}
-
-/// Starts `medley serve` on ephemeral ports with `args`; returns the child and both addresses.
-fn spawn_server(args: &[&str], envs: &[(&str, &str)]) -> (std::process::Child, String, String) {
-    let mut cmd = Command::new(BIN);
-    cmd.args(["serve", "--listen", "127.0.0.1:0", "--admin-listen", "127.0.0.1:0"])
-        .args(args)
-        .stderr(Stdio::piped());
-    for (k, v) in envs {
-        cmd.env(k, v);
-    }
-    let mut child = cmd.spawn().unwrap();
-    let mut stderr = BufReader::new(child.stderr.take().unwrap());
-    let mut line = String::new();
-    let (public, admin) = loop {
-        line.clear();
-        assert!(stderr.read_line(&mut line).unwrap() > 0, "server exited early");
-        if let (Some(p), Some(a)) = (line.split(" listen=").nth(1), line.split(" admin_listen=").nth(1)) {
-            let word = |s: &str| s.split_whitespace().next().unwrap().to_owned();
-            break (word(p), word(a));
-        }
-    };
-    // Keep draining stderr so the server never blocks on a full pipe.
-    std::thread::spawn(move || for _ in stderr.lines() {});
-    // The server sets up its file watcher before it answers anything: once /healthz answers,
-    // config writes are seen.
-    let runtime = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    let status =
-        runtime.block_on(async { reqwest::get(format!("http://{public}/healthz")).await.unwrap().status() });
-    assert_eq!(status, 200);
-    (child, public, admin)
-}
-
 fn swap_config(lambda: f64) -> String {
     format!("[slices.default]\nalgorithm = \"mmr\"\nlambda = {lambda}\nk = 5\n\n[slices.home]\nalgorithm = \"dpp\"\n")
 }
@@ -261,6 +211,11 @@ fn hot_swap_under_load_through_file_sighup_and_admin() {
                     }
                 }
                 1 => {
+                    // A reload of an unchanged file is no swap (issue 13, item 1): give SIGHUP a
+                    // new file to find. The watcher may see it first; then SIGHUP is the no-op.
+                    let tmp = dir.join("medley.toml.hup");
+                    std::fs::write(&tmp, swap_config(lambda)).unwrap();
+                    std::fs::rename(&tmp, &config).unwrap();
                     let ok = Command::new("kill").args(["-HUP", &child.id().to_string()]).status().unwrap();
                     assert!(ok.success());
                 }

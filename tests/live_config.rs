@@ -300,7 +300,9 @@ async fn a_configmap_style_symlink_swap_is_seen_by_the_watcher() {
     let dir = server.config_path.parent().unwrap().to_path_buf();
     // Turn the plain file into the ConfigMap layout (itself a rename over the file's name).
     std::fs::create_dir(dir.join("..2026_12_02_v1")).unwrap();
-    std::fs::write(dir.join("..2026_12_02_v1/medley.toml"), CONFIG).unwrap();
+    // An edited copy: a rename that leaves the content as it was is no swap (issue 13, item 1).
+    let first = CONFIG.replacen("lambda = 0.3", "lambda = 0.35", 1);
+    std::fs::write(dir.join("..2026_12_02_v1/medley.toml"), &first).unwrap();
     symlink("..2026_12_02_v1", dir.join("..data")).unwrap();
     symlink("..data/medley.toml", dir.join("medley.toml.link")).unwrap();
     std::fs::rename(dir.join("medley.toml.link"), &server.config_path).unwrap();

@@ -64,13 +64,17 @@ fn persistence_note(persisted: bool) -> &'static str {
     }
 }
 
-/// `POST /admin/reload`: re-read the config file now.
+/// `POST /admin/reload`: re-read the config file now. `"changed": false` when the file
+/// validates to the config already serving (no swap, same generation).
 async fn reload(State(state): State<AppState>) -> Result<Response, ApiError> {
     let reloader = state.reloader.clone();
-    let generation = tokio::task::spawn_blocking(move || reloader.reload(Trigger::Admin))
+    let reloaded = tokio::task::spawn_blocking(move || reloader.reload(Trigger::Admin))
         .await
         .map_err(|e| ApiError::Panicked(e.to_string()))??;
-    Ok(json(&serde_json::json!({ "config_generation": generation })))
+    Ok(json(&serde_json::json!({
+        "config_generation": reloaded.generation,
+        "changed": reloaded.changed,
+    })))
 }
 
 /// `GET /admin/config`: the live config as served, its generation and where it came from.
@@ -96,6 +100,7 @@ fn change_response(name: &str, change: &SliceChange) -> Response {
     json(&serde_json::json!({
         "slice": name,
         "config_generation": change.generation,
+        "changed": change.changed,
         "persisted": change.persisted,
         "note": persistence_note(change.persisted),
     }))

@@ -1,6 +1,7 @@
 //! Helpers shared by the integration tests: seeded slate generators.
 #![allow(dead_code, unreachable_pub)]
 
+pub mod process;
 pub mod server;
 
 use medley::{CandidateInput, Limits, RerankInput, ScoreTransform};
