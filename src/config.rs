@@ -64,6 +64,9 @@ pub struct RawServer {
     pub admin_listen: Option<String>,
     /// Largest accepted request body, and the longest line on the stream endpoint.
     pub max_body_bytes: Option<u64>,
+    /// Request body bytes held at once across all requests (reserved at the declared
+    /// Content-Length, or as a chunked body or stream line arrives); beyond it, 503 at once.
+    pub max_inflight_body_bytes: Option<u64>,
     /// Most candidates in one request.
     pub max_candidates: Option<u64>,
     /// Largest embedding dimension.
@@ -155,6 +158,8 @@ pub struct ServerSettings {
     pub admin_listen: SocketAddr,
     /// Largest body (and stream line) in bytes.
     pub max_body_bytes: usize,
+    /// Body bytes held at once across all requests (fixed at start).
+    pub max_inflight_body_bytes: usize,
     /// Candidate, dimension and k limits.
     pub limits: Limits,
     /// Per-request deadline.
@@ -392,6 +397,16 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
     // Upper bounds keep a typo from configuring a service that can be made to allocate without
     // limit; they are far above any realistic slate.
     let max_body_bytes = in_range("server.max_body_bytes", raw.max_body_bytes, 16 << 20, 1024..=1 << 30)?;
+    let max_inflight_body_bytes =
+        in_range("server.max_inflight_body_bytes", raw.max_inflight_body_bytes, 256 << 20, 1024..=1 << 40)?;
+    if max_inflight_body_bytes < max_body_bytes {
+        return Err(invalid(
+            "server.max_inflight_body_bytes",
+            format!(
+                "{max_inflight_body_bytes} is below server.max_body_bytes ({max_body_bytes}): a body of the allowed size could never be admitted"
+            ),
+        ));
+    }
     let max_candidates =
         in_range("server.max_candidates", raw.max_candidates, defaults.max_candidates as u64, 1..=100_000)?;
     let max_dim = in_range("server.max_dim", raw.max_dim, defaults.max_dim as u64, 1..=65_536)?;
@@ -419,6 +434,7 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
         listen,
         admin_listen,
         max_body_bytes: to_usize(max_body_bytes),
+        max_inflight_body_bytes: to_usize(max_inflight_body_bytes),
         limits: Limits {
             max_candidates: to_usize(max_candidates),
             max_dim: to_usize(max_dim),
@@ -596,9 +612,10 @@ pub fn describe(config: &Config) -> String {
     let _ = writeln!(out, "listen {} (public), {} (private)", s.listen, s.admin_listen);
     let _ = writeln!(
         out,
-        "limits: body {} bytes, {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \
+        "limits: body {} bytes ({} in flight), {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \
          header/idle timeout {} ms, body timeout {} ms, {} connections",
         s.max_body_bytes,
+        s.max_inflight_body_bytes,
         s.limits.max_candidates,
         s.limits.max_dim,
         s.limits.max_k,
@@ -657,6 +674,7 @@ mod tests {
         assert_eq!(c.server.listen.to_string(), "127.0.0.1:8080");
         assert_eq!(c.server.admin_listen.to_string(), "127.0.0.1:8081");
         assert_eq!(c.server.max_body_bytes, 16 << 20);
+        assert_eq!(c.server.max_inflight_body_bytes, 256 << 20);
         assert_eq!(c.server.limits, Limits::default());
     }
 
@@ -695,6 +713,8 @@ mod tests {
         assert!(err("[slices.default]\nlamda = 0.2\n").contains("unknown field `lamda`"));
         assert!(err("[server]\nlisten = \"nowhere\"\n[slices.default]\n").starts_with("server.listen"));
         assert!(err("[server]\nmax_in_flight = 0\n[slices.default]\n").starts_with("server.max_in_flight"));
+        assert!(err("[server]\nmax_inflight_body_bytes = 2048\n[slices.default]\n")
+            .starts_with("server.max_inflight_body_bytes"));
         assert!(err("[slices.default]\n[slices.Home]\n").starts_with("slices.Home"));
         assert!(err("[slices.default]\nlambda = \"x\"\n").contains("invalid type"));
     }

@@ -128,6 +128,29 @@ async fn deployment_matches_the_binary_and_its_probes_answer() {
         .unwrap_or_else(|e| panic!("the ConfigMap's config is invalid: {e}"));
     assert!(config.slices.contains_key("default"));
 
+    // Memory (issue 13, item 3): the README's bound for this config (bodies in flight, plus per
+    // pool thread a decoded slate and workspace of about 5x the largest body, plus small bodies
+    // decoded inline, plus the base) fits under the container's limit.
+    let quantity = |q: &str| -> usize {
+        let (number, unit) = q.split_at(q.find(|ch: char| !ch.is_ascii_digit()).unwrap_or(q.len()));
+        let shift = match unit {
+            "Ki" => 10,
+            "Mi" => 20,
+            "Gi" => 30,
+            "" => 0,
+            other => panic!("unexpected memory unit {other:?}"),
+        };
+        number.parse::<usize>().unwrap() << shift
+    };
+    let limit = quantity(s(&c["resources"]["limits"]["memory"]));
+    let sv = &config.server;
+    let bound = sv.max_inflight_body_bytes
+        + sv.pool_threads * 5 * sv.max_body_bytes
+        + sv.max_in_flight * 5 * medley::http::INLINE_BODY_BELOW
+        + (22 << 20);
+    assert!(bound <= limit, "memory bound {} MiB over the limit {} MiB", bound >> 20, limit >> 20);
+    assert!(quantity(s(&c["resources"]["requests"]["memory"])) <= limit);
+
     // The probes' paths answer 200 on the listener their port names, on a real server running
     // the ConfigMap's config.
     let server = Server::start(toml).await;

@@ -264,9 +264,23 @@ fn kinds() -> Vec<Kind> {
         kind(
             "a request_id 1 MiB long",
             post_json(&with(valid(), |v| v["request_id"] = json!("r".repeat(mib)))),
-            400,
-            "invalid_field",
+            422,
+            "too_long",
             Some("request_id"),
+        ),
+        kind(
+            "a unit_id 1 MiB long",
+            post_json(&with(valid(), |v| v["unit_id"] = json!("u".repeat(mib)))),
+            422,
+            "too_long",
+            Some("unit_id"),
+        ),
+        kind(
+            "a slice name 1 MiB long",
+            post_json(&with(valid(), |v| v["slice"] = json!("s".repeat(mib)))),
+            422,
+            "too_long",
+            Some("slice"),
         ),
         kind(
             "10 001 candidates",
@@ -927,12 +941,14 @@ async fn overload_is_shed_and_the_server_recovers_at_once() {
     server.stop().await;
 }
 
-/// A shed request's small body is read and dropped, so its keep-alive connection serves the next
-/// request; a large or chunked one is left unread and the answer carries `Connection: close`.
+/// A shed request's body is read and dropped (a lingering read, issue 13 item 4), so its
+/// keep-alive connection serves the next request and a client that writes before it reads gets
+/// the answer; a body over 4 × `max_body_bytes`, or one that stalls past `body_timeout_ms`, is
+/// not waited for and the answer carries `Connection: close`.
 #[tokio::test]
 async fn a_shed_request_leaves_its_connection_reusable() {
     let server =
-        Server::start("[server]\nmax_in_flight = 1\n\n[slices.default]\nalgorithm = \"relevance\"\n").await;
+        Server::start("[server]\nmax_in_flight = 1\nmax_body_bytes = 65536\nbody_timeout_ms = 300\n\n[slices.default]\nalgorithm = \"relevance\"\n").await;
     // An open stream holds the only permit.
     let mut holder = TcpStream::connect(server.addr).await.unwrap();
     holder
@@ -964,18 +980,33 @@ async fn a_shed_request_leaves_its_connection_reusable() {
     s.write_all(b"GET /healthz HTTP/1.1\r\nHost: medley.test\r\n\r\n").await.unwrap();
     assert_eq!(read_reply(&mut s, &mut buf).await.map(|r| r.status), Some(200), "reused after a shed answer");
 
-    // A body over 64 KiB, or a chunked one, is not read: the answer says the connection closes,
-    // so a client does not send its next request into a socket about to be shut.
-    let big = vec![b' '; 200 << 10];
+    // A body of 3 x max_body_bytes, sent in full before reading: read to its end, answered, and
+    // the connection is reused.
+    let big = vec![b' '; 3 * 65536];
     let mut c = TcpStream::connect(server.addr).await.unwrap();
     let head = format!(
         "POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nContent-Length: {}\r\n\r\n",
         big.len()
     );
     c.write_all(head.as_bytes()).await.unwrap();
-    let _ = c.write_all(&big).await;
+    c.write_all(&big).await.unwrap();
+    let mut buf = Vec::new();
+    let r = read_reply(&mut c, &mut buf).await.unwrap();
+    assert_eq!((r.status, r.header("connection")), (503, None), "large body read and dropped");
+    c.write_all(b"GET /healthz HTTP/1.1\r\nHost: medley.test\r\n\r\n").await.unwrap();
+    assert_eq!(read_reply(&mut c, &mut buf).await.map(|r| r.status), Some(200), "reused");
+
+    // Declared over 4 x max_body_bytes: not worth reading; answered at once, connection closes.
+    let mut c = TcpStream::connect(server.addr).await.unwrap();
+    let head = format!(
+        "POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nContent-Length: {}\r\n\r\n",
+        5 * 65536
+    );
+    c.write_all(head.as_bytes()).await.unwrap();
     let r = read_reply(&mut c, &mut Vec::new()).await.unwrap();
-    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "large body");
+    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "body over the linger cap");
+
+    // A chunked body that stalls: answered once body_timeout_ms passes, connection closes.
     let mut c = TcpStream::connect(server.addr).await.unwrap();
     c.write_all(
         b"POST /v1/rerank HTTP/1.1\r\nHost: medley.test\r\nContent-Type: application/json\r\nTransfer-Encoding: chunked\r\n\r\n2\r\n{}\r\n",
@@ -983,7 +1014,7 @@ async fn a_shed_request_leaves_its_connection_reusable() {
     .await
     .unwrap();
     let r = read_reply(&mut c, &mut Vec::new()).await.unwrap();
-    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "chunked body");
+    assert_eq!((r.status, r.header("connection")), (503, Some("close")), "stalled chunked body");
     drop(holder);
     server.stop().await;
 }

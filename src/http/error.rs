@@ -65,6 +65,14 @@ pub enum ApiError {
         /// `max_in_flight`.
         limit: usize,
     },
+    /// The bodies in flight hold `server.max_inflight_body_bytes` (503 with `Retry-After`).
+    #[error(
+        "the service holds its limit of {budget} bytes of request bodies in flight; retry after the Retry-After delay"
+    )]
+    BodyBudget {
+        /// `max_inflight_body_bytes`.
+        budget: usize,
+    },
     /// The request ran past its deadline (503 with `Retry-After`).
     #[error("the request did not finish within {ms} ms; retry, or send fewer candidates or a smaller k")]
     DeadlineExceeded {
@@ -112,9 +120,10 @@ impl ApiError {
             Self::UnsupportedMediaType { .. } => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             Self::NotFound { .. } => StatusCode::NOT_FOUND,
             Self::MethodNotAllowed { .. } => StatusCode::METHOD_NOT_ALLOWED,
-            Self::Overloaded { .. } | Self::DeadlineExceeded { .. } | Self::ShuttingDown => {
-                StatusCode::SERVICE_UNAVAILABLE
-            }
+            Self::Overloaded { .. }
+            | Self::BodyBudget { .. }
+            | Self::DeadlineExceeded { .. }
+            | Self::ShuttingDown => StatusCode::SERVICE_UNAVAILABLE,
             Self::Panicked(_) | Self::PersistFailed(_) => StatusCode::INTERNAL_SERVER_ERROR,
             Self::AdminDisabled => StatusCode::FORBIDDEN,
             Self::Unauthorized => StatusCode::UNAUTHORIZED,
@@ -134,7 +143,7 @@ impl ApiError {
             Self::BodyTimeout { .. } => "body_timeout",
             Self::NotFound { .. } => "not_found",
             Self::MethodNotAllowed { .. } => "method_not_allowed",
-            Self::Overloaded { .. } => "overloaded",
+            Self::Overloaded { .. } | Self::BodyBudget { .. } => "overloaded",
             Self::DeadlineExceeded { .. } => "deadline_exceeded",
             Self::ShuttingDown => "shutting_down",
             Self::Panicked(_) | Self::PersistFailed(_) => "internal",

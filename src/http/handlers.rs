@@ -1,8 +1,9 @@
 //! Handlers: read the body, snapshot the engine, hand the work to the pool, map the result.
 //!
-//! Bodies are read here rather than by an extractor so the limit is enforced while reading
-//! (a declared `Content-Length` over the limit is refused before reading anything) and every
-//! failure comes back in our error shape. Small bodies (under [`INLINE_BODY_BELOW`]) are decoded
+//! Bodies are read here rather than by an extractor, through [`super::body`], so the size limit
+//! and the in-flight memory budget are enforced before and while reading, a refused body is
+//! still read to its end (so the client reads the answer), and every failure comes back in our
+//! error shape. Small bodies (under [`INLINE_BODY_BELOW`]) are decoded
 //! on the async worker; larger ones are decoded, validated and served entirely on the pool, since
 //! parsing a multi-megabyte slate costs milliseconds of CPU.
 
@@ -17,6 +18,7 @@ use axum::response::{IntoResponse, Response};
 use axum::Extension;
 use futures_util::{stream, StreamExt};
 
+use super::body::{self, BodyLimits, Reservation};
 use super::{Admitted, ApiError, AppState};
 use crate::engine::Engine;
 use crate::shadow::ShadowRunner;
@@ -123,35 +125,27 @@ fn check_content_type(headers: &HeaderMap, expected: &'static str) -> Result<(),
     }
 }
 
-/// Reads the whole body, refusing it as soon as it is known to exceed `limit`.
-async fn read_body(headers: &HeaderMap, body: Body, limit: usize) -> Result<Bytes, ApiError> {
-    let declared =
-        headers.get(header::CONTENT_LENGTH).and_then(|v| v.to_str().ok()).and_then(|v| v.parse::<u64>().ok());
-    if declared.is_some_and(|n| n > limit as u64) {
-        return Err(ApiError::PayloadTooLarge { limit });
-    }
-    let mut buf = Vec::with_capacity(declared.map_or(0, |n| n as usize));
-    let mut frames = body.into_data_stream();
-    while let Some(frame) = frames.next().await {
-        let chunk = frame.map_err(|e| ApiError::BodyRead(e.to_string()))?;
-        if buf.len() + chunk.len() > limit {
-            return Err(ApiError::PayloadTooLarge { limit });
-        }
-        buf.extend_from_slice(&chunk);
-    }
-    Ok(Bytes::from(buf))
-}
-
 /// `POST /v1/rerank`.
 pub(super) async fn rerank(State(state): State<AppState>, request: Request) -> Result<Response, ApiError> {
     let engine = state.engine.load_full();
     let (parts, body) = request.into_parts();
-    check_content_type(&parts.headers, "application/json")?;
     let server = &engine.config().server;
-    let bytes =
-        tokio::time::timeout(server.body_timeout, read_body(&parts.headers, body, server.max_body_bytes))
-            .await
-            .map_err(|_| ApiError::BodyTimeout { ms: server.body_timeout.as_millis() })??;
+    let limits = BodyLimits { max: server.max_body_bytes, timeout: server.body_timeout };
+    if let Err(error) = check_content_type(&parts.headers, "application/json") {
+        let reusable = body::linger(&parts.headers, body.into_data_stream(), 0, limits).await;
+        return Ok(body::Refusal { error, reusable }.into_response());
+    }
+    // The reservation lives to the end of this handler: the body and the slate decoded from it
+    // count against the budget until the answer is built.
+    let (bytes, _reservation) = match body::receive(&state.body_budget, &parts.headers, body, limits).await {
+        Ok(received) => received,
+        Err(refusal) => {
+            if matches!(refusal.error, ApiError::BodyBudget { .. }) {
+                state.metrics.body_budget_refused.inc();
+            }
+            return Ok(refusal.into_response());
+        }
+    };
     let span = tracing::info_span!(
         "rerank",
         request_id = tracing::field::Empty,
@@ -189,40 +183,80 @@ fn json_response(status: StatusCode, body: Vec<u8>) -> Response {
 
 /// One piece of an NDJSON body.
 enum Piece {
-    /// A non-blank line and its 1-based number.
-    Line(u64, Bytes),
+    /// A non-blank line, its 1-based number, and its bytes' share of the body budget.
+    Line(u64, Bytes, Reservation),
     /// A line longer than the limit (its bytes were discarded).
     TooLong(u64),
+    /// A line the body budget could not hold (its bytes were discarded).
+    OverBudget(u64),
     /// The body failed mid-stream; nothing follows.
     ReadFailed(u64, String),
     /// No body data for the gap limit; nothing follows.
     Stalled(u64),
 }
 
+/// Why the rest of a line is being skipped.
+#[derive(Clone, Copy)]
+enum Skip {
+    TooLong,
+    OverBudget,
+}
+
 /// Splits a body into lines without holding more than one line (bounded by `max`) in memory,
-/// ending with [`Piece::Stalled`] when no data comes for `gap` while a line is awaited.
+/// ending with [`Piece::Stalled`] when no data comes for `gap` while a line is awaited. The line
+/// being assembled reserves its bytes from `reservation`'s budget as they arrive; a complete
+/// line carries its reservation on, so it counts until it is answered.
 fn split_lines(
     body: Body,
     max: usize,
     gap: std::time::Duration,
+    reservation: Reservation,
 ) -> impl futures_util::Stream<Item = Piece> + Send {
     struct St {
         frames: axum::body::BodyDataStream,
         buf: Vec<u8>,
         line: u64,
-        skipping: bool,
+        skipping: Option<Skip>,
         done: bool,
+        reservation: Reservation,
     }
     fn take_line(st: &mut St, end: usize, out: &mut Vec<Piece>) {
         st.line += 1;
         let line: Vec<u8> = st.buf.drain(..end).collect();
-        if std::mem::take(&mut st.skipping) {
-            out.push(Piece::TooLong(st.line));
-        } else if !line.trim_ascii().is_empty() {
-            out.push(Piece::Line(st.line, Bytes::from(line)));
+        match st.skipping.take() {
+            Some(Skip::TooLong) => out.push(Piece::TooLong(st.line)),
+            Some(Skip::OverBudget) => out.push(Piece::OverBudget(st.line)),
+            None if !line.trim_ascii().is_empty() => {
+                out.push(Piece::Line(st.line, Bytes::from(line), st.reservation.take()));
+            }
+            None => {}
         }
     }
-    let st = St { frames: body.into_data_stream(), buf: Vec::new(), line: 0, skipping: false, done: false };
+    /// Appends to the line being assembled, or starts skipping it.
+    fn extend(st: &mut St, bytes: &[u8], max: usize) {
+        if st.skipping.is_some() {
+            return;
+        }
+        let len = st.buf.len() + bytes.len();
+        if len > max {
+            st.skipping = Some(Skip::TooLong);
+        } else if !st.reservation.grow_ahead(len, max) {
+            st.skipping = Some(Skip::OverBudget);
+        } else {
+            st.buf.extend_from_slice(bytes);
+            return;
+        }
+        st.buf.clear();
+        drop(st.reservation.take());
+    }
+    let st = St {
+        frames: body.into_data_stream(),
+        buf: Vec::new(),
+        line: 0,
+        skipping: None,
+        done: false,
+        reservation,
+    };
     stream::unfold(st, move |mut st| async move {
         if st.done {
             return None;
@@ -236,20 +270,12 @@ fn split_lines(
             Some(Ok(chunk)) => {
                 let mut rest = &chunk[..];
                 while let Some(pos) = rest.iter().position(|&b| b == b'\n') {
-                    if !st.skipping {
-                        st.buf.extend_from_slice(&rest[..pos]);
-                    }
+                    extend(&mut st, &rest[..pos], max);
                     let len = st.buf.len();
                     take_line(&mut st, len, &mut out);
                     rest = &rest[pos + 1..];
                 }
-                if !st.skipping {
-                    st.buf.extend_from_slice(rest);
-                    if st.buf.len() > max {
-                        st.buf.clear();
-                        st.skipping = true;
-                    }
-                }
+                extend(&mut st, rest, max);
             }
             Some(Err(e)) => {
                 st.done = true;
@@ -257,7 +283,7 @@ fn split_lines(
             }
             None => {
                 st.done = true;
-                if st.skipping || !st.buf.is_empty() {
+                if st.skipping.is_some() || !st.buf.is_empty() {
                     let len = st.buf.len();
                     take_line(&mut st, len, &mut out);
                 }
@@ -277,15 +303,26 @@ pub(super) async fn rerank_stream(
     // One snapshot for the whole stream: every line is served by the same config.
     let engine = state.engine.load_full();
     let (parts, body) = request.into_parts();
-    check_content_type(&parts.headers, "application/x-ndjson")?;
     let server = &engine.config().server;
     let (max_line, in_flight, gap) = (server.max_body_bytes, server.stream_in_flight, server.body_timeout);
-    let lines = split_lines(body, max_line, gap).map(move |piece| {
+    if let Err(error) = check_content_type(&parts.headers, "application/x-ndjson") {
+        let limits = BodyLimits { max: max_line, timeout: gap };
+        let reusable = body::linger(&parts.headers, body.into_data_stream(), 0, limits).await;
+        return Ok(body::Refusal { error, reusable }.into_response());
+    }
+    let reservation = state.body_budget.empty();
+    let lines = split_lines(body, max_line, gap, reservation).map(move |piece| {
         let (state, engine) = (state.clone(), engine.clone());
         async move {
             let outcome = match piece {
-                Piece::Line(n, bytes) => serve_one(&state, engine, bytes).await.map_err(|e| (n, e)),
+                Piece::Line(n, bytes, _reservation) => {
+                    serve_one(&state, engine, bytes).await.map_err(|e| (n, e))
+                }
                 Piece::TooLong(n) => Err((n, ApiError::PayloadTooLarge { limit: max_line })),
+                Piece::OverBudget(n) => {
+                    state.metrics.body_budget_refused.inc();
+                    Err((n, ApiError::BodyBudget { budget: state.body_budget.bytes() }))
+                }
                 Piece::ReadFailed(n, message) => Err((n, ApiError::BodyRead(message))),
                 Piece::Stalled(n) => Err((n, ApiError::BodyTimeout { ms: gap.as_millis() })),
             };
@@ -339,6 +376,7 @@ pub(super) async fn readyz(State(state): State<AppState>) -> Response {
 
 /// `GET /metrics`: Prometheus text format.
 pub(super) async fn metrics(State(state): State<AppState>) -> Response {
+    state.metrics.inflight_body_bytes.set(i64::try_from(state.body_budget.reserved()).unwrap_or(i64::MAX));
     (
         StatusCode::OK,
         [(header::CONTENT_TYPE, HeaderValue::from_static("text/plain; version=0.0.4; charset=utf-8"))],

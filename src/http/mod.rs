@@ -7,6 +7,7 @@
 //! `Retry-After`). Health, readiness and metrics are never shed.
 
 mod admin;
+pub mod body;
 pub mod conn;
 mod error;
 mod handlers;
@@ -16,7 +17,7 @@ use std::sync::Arc;
 
 use arc_swap::ArcSwap;
 use axum::extract::{Request, State};
-use axum::http::{header, HeaderValue};
+
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -70,6 +71,8 @@ pub struct AppState {
     /// counter so a stream's permit can live inside its response body until the last line.
     permits: Arc<Semaphore>,
     max_in_flight: usize,
+    /// `server.max_inflight_body_bytes`, fixed at start: bodies reserve against it while held.
+    pub body_budget: body::BodyBudget,
     /// Set when shutdown starts: readiness turns 503 so load balancers stop sending.
     draining: Arc<AtomicBool>,
     /// The public and private addresses as bound (a configured port 0 becomes a real one); set
@@ -89,12 +92,13 @@ impl AppState {
         admin_token: Option<String>,
     ) -> Result<Self, StartError> {
         let runtime = source.read_overlay()?;
-        let file = source.read_file()?;
+        let file = source.read_valid_file()?;
         let config = source.build(file.clone(), &runtime)?;
         let server = &config.server;
         let pool = Pool::new(server.pool_threads, server.inline_work_below)?;
         let shadow = ShadowRunner::start(server.shadow_queue, metrics.clone())?;
         let max_in_flight = server.max_in_flight;
+        let body_budget = body::BodyBudget::new(server.max_inflight_body_bytes);
         let first = Engine::new(config, 1);
         metrics.set_config(1, first.digest());
         let engine = Arc::new(ArcSwap::from_pointee(first));
@@ -109,6 +113,7 @@ impl AppState {
             admin_token: admin_token.filter(|t| !t.is_empty()).map(Into::into),
             permits: Arc::new(Semaphore::new(max_in_flight)),
             max_in_flight,
+            body_budget,
             draining: Arc::new(AtomicBool::new(false)),
             bound: Arc::default(),
         })
@@ -202,42 +207,22 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
     }
     let Ok(permit) = state.permits.clone().try_acquire_owned() else {
         state.metrics.shed.inc();
-        let mut response = ApiError::Overloaded { limit: state.max_in_flight }.into_response();
-        if !drain_small_body(request).await {
-            response.headers_mut().insert(header::CONNECTION, HeaderValue::from_static("close"));
-        }
-        return response;
+        // Read the refused body to its end (bounded), so a client that sends before it reads
+        // gets this answer rather than a reset, and the connection stays reusable.
+        let limits = {
+            let engine = state.engine.load();
+            let server = &engine.config().server;
+            body::BodyLimits { max: server.max_body_bytes, timeout: server.body_timeout }
+        };
+        let (parts, incoming) = request.into_parts();
+        let reusable = body::linger(&parts.headers, incoming.into_data_stream(), 0, limits).await;
+        return body::Refusal { error: ApiError::Overloaded { limit: state.max_in_flight }, reusable }
+            .into_response();
     };
     state.metrics.in_flight.inc();
     let admitted = Arc::new(Admitted { _permit: permit, metrics: state.metrics.clone() });
     request.extensions_mut().insert(admitted);
     next.run(request).await
-}
-
-/// Bodies up to this size are read and dropped when a request is shed, so its connection stays
-/// reusable; larger or chunked ones get `Connection: close` instead.
-const SHED_DRAIN_MAX: u64 = 64 << 10;
-
-/// Reads and drops a small body (bounded in size and time); false when the connection cannot be
-/// reused. Without it hyper closes a connection whose request body was left unread, and a client
-/// that sends its next request on it sees the connection drop mid-request: under overload that
-/// turns every shed answer into a reconnect.
-async fn drain_small_body(request: Request) -> bool {
-    let declared = request
-        .headers()
-        .get(header::CONTENT_LENGTH)
-        .and_then(|v| v.to_str().ok())
-        .and_then(|v| v.parse::<u64>().ok());
-    match declared {
-        Some(0) => true,
-        Some(n) if n <= SHED_DRAIN_MAX => {
-            let read = axum::body::to_bytes(request.into_body(), SHED_DRAIN_MAX as usize);
-            matches!(tokio::time::timeout(std::time::Duration::from_millis(100), read).await, Ok(Ok(_)))
-        }
-        // No Content-Length: a GET-like request with no body, or a chunked one.
-        None => !request.headers().contains_key(header::TRANSFER_ENCODING),
-        Some(_) => false,
-    }
 }
 
 /// Serves the public and the private router until `shutdown` starts, then stops accepting,
