@@ -33,6 +33,17 @@ pub enum RequestError {
         /// Path of the field at fault.
         path: Option<String>,
     },
+    /// `request_id`, `unit_id` or `slice` longer than [`MAX_LABEL_BYTES`] (the same code as an
+    /// over-long candidate id).
+    #[error("{field} is {got} bytes; the limit is {max}")]
+    LabelTooLong {
+        /// The request field.
+        field: &'static str,
+        /// Its length in bytes.
+        got: usize,
+        /// The limit.
+        max: usize,
+    },
     /// No slice of that name is configured.
     #[error("unknown slice {name:?}; configured slices: {known}")]
     UnknownSlice {
@@ -93,6 +104,7 @@ impl RequestError {
         match self {
             Self::MalformedJson { .. } => "malformed_json",
             Self::InvalidField { .. } => "invalid_field",
+            Self::LabelTooLong { .. } => "too_long",
             Self::UnknownSlice { .. } => "unknown_slice",
             Self::SliceLocked { .. } => "slice_locked",
             Self::UnknownAlgorithm { .. } => "unknown_algorithm",
@@ -123,6 +135,7 @@ impl RequestError {
         match self {
             Self::MalformedJson { .. } | Self::Kernel(_) => None,
             Self::InvalidField { path, .. } => path.clone(),
+            Self::LabelTooLong { field, .. } => Some((*field).into()),
             Self::UnknownSlice { .. } => Some("slice".into()),
             Self::SliceLocked { field, .. } => Some((*field).into()),
             Self::UnknownAlgorithm { .. } => Some("algorithm".into()),
@@ -201,10 +214,7 @@ impl Engine {
             [("request_id", &request.request_id), ("unit_id", &request.unit_id), ("slice", &request.slice)]
         {
             if let Some(got) = label.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
-                return Err(RequestError::InvalidField {
-                    message: format!("{path} is {got} bytes; the limit is {MAX_LABEL_BYTES}"),
-                    path: Some(path.to_owned()),
-                });
+                return Err(RequestError::LabelTooLong { field: path, got, max: MAX_LABEL_BYTES });
             }
         }
         let slice_name = request.slice.as_deref().unwrap_or(DEFAULT_SLICE);
@@ -382,7 +392,7 @@ impl Reranked {
             .iter()
             .map(|&i| Item {
                 id: p.input.ids()[i].clone(),
-                score: p.input.scores()[i],
+                score: p.input.sent_score(i),
                 category: p.input.category(i).map(str::to_owned),
             })
             .collect();

@@ -255,7 +255,11 @@ impl Embeddings {
 #[derive(Debug, Clone, PartialEq)]
 pub struct RerankInput {
     ids: Vec<String>,
+    /// Scores as sent, except that `-0.0` is stored as `0.0` (see [`RerankInput::scores`]).
     scores: Vec<f64>,
+    /// Indices (ascending) of the candidates that sent `-0.0`, so the answer echoes it; almost
+    /// always empty, so it costs nothing.
+    sent_negative_zero: Vec<usize>,
     normalized: Vec<f64>,
     groups: Vec<u32>,
     group_names: Vec<Option<String>>,
@@ -328,6 +332,7 @@ impl RerankInput {
         let mut groups = Vec::with_capacity(n);
         let mut group_names: Vec<Option<String>> = Vec::new();
         let mut group_of: HashMap<Option<String>, u32> = HashMap::new();
+        let mut sent_negative_zero = Vec::new();
         let mut data = Vec::with_capacity(if any_embedding { n * dim } else { 0 });
 
         for (index, c) in candidates.into_iter().enumerate() {
@@ -371,7 +376,11 @@ impl RerankInput {
                 }
             };
             groups.push(group);
-            scores.push(c.score);
+            if c.score == 0.0 && c.score.is_sign_negative() {
+                sent_negative_zero.push(index);
+            }
+            // `-0.0` equals `0.0`; stored as `0.0` so every ordering sees one value.
+            scores.push(c.score + 0.0);
             ids.push(c.id);
         }
 
@@ -383,7 +392,7 @@ impl RerankInput {
                 .collect();
             Embeddings { dim, data, inv_norm }
         });
-        Ok(Self { ids, scores, normalized, groups, group_names, embeddings })
+        Ok(Self { ids, scores, sent_negative_zero, normalized, groups, group_names, embeddings })
     }
 
     /// Number of candidates N.
@@ -404,10 +413,25 @@ impl RerankInput {
         &self.ids
     }
 
-    /// Raw scores as sent.
+    /// Raw scores as sent, except that `-0.0` reads as `0.0`: the two are equal numbers, and a
+    /// slate must order them as a tie (toward the lower index), which `total_cmp` and bit-level
+    /// comparisons would not. Every kernel orders by these.
     #[must_use]
     pub fn scores(&self) -> &[f64] {
         &self.scores
+    }
+
+    /// Candidate `i`'s score exactly as the caller sent it (`-0.0` included), for echoing.
+    ///
+    /// # Panics
+    /// If `i` is not a candidate index.
+    #[must_use]
+    pub fn sent_score(&self, i: usize) -> f64 {
+        if self.sent_negative_zero.binary_search(&i).is_ok() {
+            -0.0
+        } else {
+            self.scores[i]
+        }
     }
 
     /// Normalised scores `s_i` (see [`ScoreTransform`]).
@@ -463,7 +487,20 @@ fn push_unit_row(e: &[f32], index: usize, data: &mut Vec<f32>) -> Result<(), Val
 }
 
 /// Applies `transform` to the slate's scores.
+///
+/// Every output is `+ 0.0`'d: `-0.0` and `0.0` are equal scores, but orderings built on
+/// `total_cmp` (and bit-level comparisons) put `-0.0` first from the bottom, so a candidate
+/// scored `-0.0` (numpy's rounding makes them routinely) would lose its tie to a later `0.0`.
+/// `x + 0.0` is `x` for every other value, and `+0.0` for both zeros (IEEE 754 §6.3).
 fn normalize_scores(scores: &[f64], transform: ScoreTransform) -> Vec<f64> {
+    let mut out = normalize_scores_signed(scores, transform);
+    for s in &mut out {
+        *s += 0.0;
+    }
+    out
+}
+
+fn normalize_scores_signed(scores: &[f64], transform: ScoreTransform) -> Vec<f64> {
     match transform {
         ScoreTransform::None => scores.to_vec(),
         ScoreTransform::MinMax => {
@@ -560,6 +597,16 @@ mod tests {
         assert_eq!(normalize_scores(&[7.0, 7.0], ScoreTransform::MinMax), vec![1.0, 1.0]);
         let huge = normalize_scores(&[-f64::MAX, f64::MAX], ScoreTransform::MinMax);
         assert_eq!(huge, vec![0.0, 1.0]);
+    }
+
+    /// Issue 13, item 5: `-0.0` and `0.0` are one score, so neither transform may tell them apart.
+    #[test]
+    fn negative_zero_scores_normalise_to_positive_zero() {
+        for t in [ScoreTransform::None, ScoreTransform::MinMax] {
+            let out = normalize_scores(&[-0.0, 0.0, 1.0], t);
+            assert_eq!(out[0].to_bits(), 0.0_f64.to_bits(), "{t:?}");
+            assert_eq!(out[1].to_bits(), 0.0_f64.to_bits(), "{t:?}");
+        }
     }
 
     #[test]
