@@ -103,7 +103,8 @@ pub enum Command {
         #[arg(long, default_value = "replay-out")]
         out: PathBuf,
         /// Choose per algorithm the most diverse lambda within a bound, e.g. "ndcg>=0.95*baseline"
-        /// (metrics: ndcg, recall, relevance_retained), and print a slice config for it.
+        /// (metrics: ndcg, recall, ndcg_reachable, recall_reachable,
+        /// relevance_retained), and print a slice config for it.
         #[arg(long)]
         pick: Option<String>,
     },

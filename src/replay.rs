@@ -4,8 +4,11 @@
 //! Each logged line is a re-rank request plus `"clicked": [ids]`. Lines are validated once into
 //! slates (the same validation as the server), then every cell of the grid re-ranks every slate
 //! on all cores. Per cell it reports:
-//! - accuracy: recall@k, nDCG@k (binary gains, log2 discount) and relevance retained (Σ
-//!   normalised score of the slate ÷ Σ of the relevance top-k);
+//! - accuracy: recall@k and nDCG@k (binary gains, log2 discount) in their textbook form, whose
+//!   ideal and denominator count every item the line logs as clicked, offered or not; the same
+//!   two restricted to the clicked items among the candidates (`recall_reachable`,
+//!   `ndcg_reachable`: what a re-ranker of this candidate set could at best reach); and
+//!   relevance retained (Σ normalised score of the slate ÷ Σ of the relevance top-k);
 //! - diversity: mean category entropy (bits), mean intra-list distance, mean distinct categories,
 //!   and over all slates the item coverage and the Gini coefficient of item exposure.
 //!
@@ -39,6 +42,9 @@ pub struct Slate {
     input: RerankInput,
     /// Whether each candidate was clicked.
     clicked: Vec<bool>,
+    /// Distinct ids the line logs as clicked, among the candidates or not: the relevant set of
+    /// the standard nDCG and recall.
+    relevant: usize,
     /// Global item number of each candidate (for coverage and exposure).
     item: Vec<u32>,
 }
@@ -101,7 +107,7 @@ pub fn read_corpus(engine: &Engine, input: &mut dyn BufRead) -> std::io::Result<
         for (n, result) in parsed {
             match result {
                 Err(reason) => skipped.push((n, reason)),
-                Ok((input, clicked)) => {
+                Ok((input, clicked, relevant)) => {
                     let item = input
                         .ids()
                         .iter()
@@ -110,7 +116,7 @@ pub fn read_corpus(engine: &Engine, input: &mut dyn BufRead) -> std::io::Result<
                             *items.entry(id.clone()).or_insert(next)
                         })
                         .collect();
-                    slates.push(Slate { input, clicked, item });
+                    slates.push(Slate { input, clicked, relevant, item });
                 }
             }
         }
@@ -118,8 +124,9 @@ pub fn read_corpus(engine: &Engine, input: &mut dyn BufRead) -> std::io::Result<
     Ok(Corpus { slates, items: items.len(), skipped })
 }
 
-/// A validated slate and its click flags, or why its line is skipped.
-type Validated = Result<(RerankInput, Vec<bool>), String>;
+/// A validated slate, its click flags and its number of distinct clicked ids, or why its line
+/// is skipped.
+type Validated = Result<(RerankInput, Vec<bool>, usize), String>;
 
 /// One logged line into a validated slate and its click flags, or why it is skipped.
 fn validate_line(engine: &Engine, line: &[u8]) -> Validated {
@@ -135,32 +142,47 @@ fn validate_line(engine: &Engine, line: &[u8]) -> Validated {
     request.lambda = None;
     request.k = None;
     let input = engine.prepare(request).map_err(|e| e.to_string())?.input;
-    let clicked = input.ids().iter().map(|id| logged.clicked.iter().any(|c| c == id)).collect();
-    Ok((input, clicked))
+    let mut distinct: Vec<&str> = logged.clicked.iter().map(String::as_str).collect();
+    distinct.sort_unstable();
+    distinct.dedup();
+    let clicked = input.ids().iter().map(|id| distinct.binary_search(&id.as_str()).is_ok()).collect();
+    Ok((input, clicked, distinct.len()))
 }
 
-/// recall@k: clicked items in the slate ÷ clicked items offered (0 when none were clicked).
+/// recall@k: clicked items in the slate ÷ `relevant`, the number of relevant items (0 when
+/// there are none).
+///
+/// Pass the distinct clicked ids of the line for the standard recall, or the clicked
+/// candidates ([`reachable`]) for the candidate-restricted variant.
 #[must_use]
-pub fn recall(slate: &[usize], clicked: &[bool]) -> f64 {
-    let total = clicked.iter().filter(|&&c| c).count();
-    if total == 0 {
+pub fn recall(slate: &[usize], clicked: &[bool], relevant: usize) -> f64 {
+    if relevant == 0 {
         return 0.0;
     }
-    slate.iter().filter(|&&i| clicked[i]).count() as f64 / total as f64
+    slate.iter().filter(|&&i| clicked[i]).count() as f64 / relevant as f64
 }
 
-/// nDCG@k with binary gains and a log2 discount.
+/// The clicked items among the candidates: the relevant set of the `_reachable` variants.
+#[must_use]
+pub fn reachable(clicked: &[bool]) -> usize {
+    clicked.iter().filter(|&&c| c).count()
+}
+
+/// nDCG@k with binary gains and a log2 discount, over `relevant` relevant items.
 ///
 /// # Reference
 /// K. Järvelin and J. Kekäläinen, "Cumulated gain-based evaluation of IR techniques", ACM TOIS
 /// 20(4), 2002: `DCG@k = Σ_{r=1..k} rel_r / log2(r + 1)`, normalised by the DCG of the ideal
-/// order (all clicked items first, `min(|clicked|, k)` of them).
+/// ranking, which puts *every* relevant item first: `min(relevant, k)` hits. With `relevant` =
+/// the line's distinct clicked ids this is the textbook nDCG, which counts a clicked item that
+/// retrieval never offered as a miss of every re-ranker alike; with `relevant` =
+/// [`reachable`]`(clicked)` it is the candidate-restricted variant (`ndcg_reachable`).
 #[must_use]
-pub fn ndcg(slate: &[usize], clicked: &[bool], k: usize) -> f64 {
+pub fn ndcg(slate: &[usize], clicked: &[bool], relevant: usize, k: usize) -> f64 {
     let discount = |rank: usize| 1.0 / ((rank + 1) as f64).log2();
     let dcg: f64 =
         slate.iter().take(k).enumerate().filter(|(_, &i)| clicked[i]).map(|(r, _)| discount(r + 1)).sum();
-    let ideal_hits = clicked.iter().filter(|&&c| c).count().min(k);
+    let ideal_hits = relevant.min(k);
     let idcg: f64 = (1..=ideal_hits).map(discount).sum();
     // An empty f64 sum is -0.0; report +0 for a slate with no hits.
     if idcg == 0.0 {
@@ -177,10 +199,14 @@ pub struct Point {
     pub algorithm: &'static str,
     /// Lambda.
     pub lambda: f64,
-    /// Mean recall@k.
+    /// Mean recall@k over all logged clicks.
     pub recall: f64,
-    /// Mean nDCG@k.
+    /// Mean nDCG@k over all logged clicks (Järvelin & Kekäläinen 2002).
     pub ndcg: f64,
+    /// Mean recall@k over the clicked candidates only.
+    pub recall_reachable: f64,
+    /// Mean nDCG@k over the clicked candidates only.
+    pub ndcg_reachable: f64,
     /// Mean relevance retained.
     pub relevance_retained: f64,
     /// Mean category entropy, bits.
@@ -200,6 +226,8 @@ pub struct Point {
 struct Sums {
     recall: f64,
     ndcg: f64,
+    recall_reachable: f64,
+    ndcg_reachable: f64,
     retained: f64,
     entropy: f64,
     ild: f64,
@@ -210,6 +238,8 @@ impl Sums {
     fn add(mut self, o: &Self) -> Self {
         self.recall += o.recall;
         self.ndcg += o.ndcg;
+        self.recall_reachable += o.recall_reachable;
+        self.ndcg_reachable += o.ndcg_reachable;
         self.retained += o.retained;
         self.entropy += o.entropy;
         self.ild += o.ild;
@@ -245,8 +275,10 @@ pub fn evaluate(
             let score = |sl: &[usize]| sl.iter().map(|&i| s.input.normalized()[i]).sum::<f64>();
             let base_score = score(&base);
             let sums = Sums {
-                recall: recall(&picked, &s.clicked),
-                ndcg: ndcg(&picked, &s.clicked, k),
+                recall: recall(&picked, &s.clicked, s.relevant),
+                ndcg: ndcg(&picked, &s.clicked, s.relevant, k),
+                recall_reachable: recall(&picked, &s.clicked, reachable(&s.clicked)),
+                ndcg_reachable: ndcg(&picked, &s.clicked, reachable(&s.clicked), k),
                 retained: if base_score > 0.0 { score(&picked) / base_score } else { 1.0 },
                 entropy: measures::category_entropy_bits(&s.input, &picked),
                 ild: measures::intra_list_distance(&s.input, &picked).unwrap_or(0.0),
@@ -270,6 +302,8 @@ pub fn evaluate(
         lambda,
         recall: total.recall / n,
         ndcg: total.ndcg / n,
+        recall_reachable: total.recall_reachable / n,
+        ndcg_reachable: total.ndcg_reachable / n,
         relevance_retained: total.retained / n,
         entropy: total.entropy / n,
         ild: total.ild / n,
@@ -303,7 +337,7 @@ pub fn parse_lambdas(text: &str) -> Result<Vec<f64>, String> {
 /// A `--pick` rule: keep `metric >= factor × baseline`, maximise mean entropy.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct PickRule {
-    /// `ndcg`, `recall` or `relevance_retained`.
+    /// `ndcg`, `recall`, `ndcg_reachable`, `recall_reachable` or `relevance_retained`.
     pub metric: &'static str,
     /// Share of the relevance baseline that must be kept.
     pub factor: f64,
@@ -316,13 +350,15 @@ pub struct PickRule {
 pub fn parse_pick(text: &str) -> Result<PickRule, String> {
     let expected = || {
         format!(
-            "{text:?}: expected METRIC>=FACTOR*baseline with METRIC one of ndcg, recall, relevance_retained"
+            "{text:?}: expected METRIC>=FACTOR*baseline with METRIC one of ndcg, recall, ndcg_reachable, recall_reachable, relevance_retained"
         )
     };
     let (metric, rest) = text.split_once(">=").ok_or_else(expected)?;
     let metric = match metric.trim() {
         "ndcg" => "ndcg",
         "recall" => "recall",
+        "ndcg_reachable" => "ndcg_reachable",
+        "recall_reachable" => "recall_reachable",
         "relevance_retained" => "relevance_retained",
         _ => return Err(expected()),
     };
@@ -337,6 +373,8 @@ impl Point {
     pub fn metric(&self, name: &str) -> f64 {
         match name {
             "recall" => self.recall,
+            "ndcg_reachable" => self.ndcg_reachable,
+            "recall_reachable" => self.recall_reachable,
             "relevance_retained" => self.relevance_retained,
             _ => self.ndcg,
         }
@@ -371,18 +409,19 @@ pub fn pick<'a>(
 }
 
 /// The CSV header of `frontier.csv`.
-pub const CSV_HEADER: &str =
-    "algorithm,lambda,recall,ndcg,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
+pub const CSV_HEADER: &str = "algorithm,lambda,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
 
 /// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
 #[must_use]
 pub fn csv_row(label: &str, p: &Point) -> String {
     format!(
-        "{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
+        "{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
         label,
         p.lambda,
         p.recall,
         p.ndcg,
+        p.recall_reachable,
+        p.ndcg_reachable,
         p.relevance_retained,
         p.entropy,
         p.ild,
@@ -402,16 +441,22 @@ mod tests {
         // Candidates 0..5, clicked {1, 3}. Slate [1, 0, 3]: DCG = 1/log2 2 + 1/log2 4 = 1.5;
         // ideal [1, 3, ..]: 1 + 1/log2 3 = 1.6309297535714575; nDCG = 0.9197207891481876.
         let clicked = [false, true, false, true, false];
-        let n = ndcg(&[1, 0, 3], &clicked, 3);
+        let n = ndcg(&[1, 0, 3], &clicked, 2, 3);
         assert!((n - 1.5 / (1.0 + 1.0 / 3f64.log2())).abs() < 1e-12, "{n}");
         assert!((n - 0.919_720_789_148_187_6).abs() < 1e-12, "value from CPython");
-        assert!((ndcg(&[1, 3, 0], &clicked, 3) - 1.0).abs() < 1e-12, "ideal order");
-        assert_eq!(ndcg(&[0, 2, 4], &clicked, 3).to_bits(), 0.0_f64.to_bits());
+        assert!((ndcg(&[1, 3, 0], &clicked, 2, 3) - 1.0).abs() < 1e-12, "ideal order");
+        assert_eq!(ndcg(&[0, 2, 4], &clicked, 2, 3).to_bits(), 0.0_f64.to_bits());
         // k = 1: only rank 1 counts; the ideal has one hit.
-        assert!((ndcg(&[3], &clicked, 1) - 1.0).abs() < 1e-12);
-        assert!((recall(&[1, 0, 3], &clicked) - 1.0).abs() < 1e-12);
-        assert!((recall(&[1, 0], &clicked) - 0.5).abs() < 1e-12);
-        assert_eq!(recall(&[0], &[false, false]).to_bits(), 0.0_f64.to_bits());
+        assert!((ndcg(&[3], &clicked, 2, 1) - 1.0).abs() < 1e-12);
+        assert!((recall(&[1, 0, 3], &clicked, 2) - 1.0).abs() < 1e-12);
+        assert!((recall(&[1, 0], &clicked, 2) - 0.5).abs() < 1e-12);
+        assert_eq!(recall(&[0], &[false, false], 0).to_bits(), 0.0_f64.to_bits());
+        // A third clicked item that was never a candidate: the ideal ranks all three, so the
+        // ideal order of the candidates no longer reaches 1. IDCG@3 = 1 + 1/log2 3 + 1/2.
+        let n = ndcg(&[1, 3, 0], &clicked, 3, 3);
+        assert!((n - (1.0 + 1.0 / 3f64.log2()) / (1.5 + 1.0 / 3f64.log2())).abs() < 1e-12, "{n}");
+        assert!((recall(&[1, 3, 0], &clicked, 3) - 2.0 / 3.0).abs() < 1e-12);
+        assert_eq!(reachable(&clicked), 2);
     }
 
     #[test]
@@ -424,6 +469,8 @@ mod tests {
         assert!(parse_lambdas("1:0:0.1").is_err());
         assert_eq!(parse_pick("ndcg>=0.95*baseline").unwrap(), PickRule { metric: "ndcg", factor: 0.95 });
         assert!(parse_pick("ndcg>0.95").is_err());
+        assert_eq!(parse_pick("ndcg_reachable>=0.9*baseline").unwrap().metric, "ndcg_reachable");
+        assert_eq!(parse_pick("recall_reachable>=0.9*baseline").unwrap().metric, "recall_reachable");
         assert!(parse_pick("mrr>=0.9*baseline").is_err());
     }
 }
@@ -488,11 +535,13 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     let _ = writeln!(report, "{} slates, {} items offered, k = {k}", corpus.len(), corpus.items);
     let _ = writeln!(
         report,
-        "{:<10} {:>6} {:>9} {:>8} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
+        "{:<10} {:>6} {:>9} {:>8} {:>16} {:>14} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
         "algorithm",
         "lambda",
         "recall@k",
         "nDCG@k",
+        "recall_reachable",
+        "ndcg_reachable",
         "retained",
         "entropy",
         "ILD",
@@ -503,11 +552,13 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     for &(label, p) in &rows {
         let _ = writeln!(
             report,
-            "{:<10} {:>6.2} {:>9.4} {:>8.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
+            "{:<10} {:>6.2} {:>9.4} {:>8.4} {:>16.4} {:>14.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
             label,
             p.lambda,
             p.recall,
             p.ndcg,
+            p.recall_reachable,
+            p.ndcg_reachable,
             p.relevance_retained,
             p.entropy,
             p.ild,

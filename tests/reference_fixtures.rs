@@ -93,3 +93,37 @@ fn gini_matches_mean_difference_definition() {
         assert!((measures::gini(&x) - case["gini"].as_f64().unwrap()).abs() < 1e-12, "{x:?}");
     }
 }
+
+/// Issue 13, item 7: replay's nDCG@k and recall@k are the textbook ones (the ideal ranks every
+/// distinct clicked id, offered or not), and the `_reachable` columns restrict them to the
+/// clicked candidates; both held to the numpy vector computation in make_fixtures.py, through
+/// the whole replay path (parsing the logged line, deduplicating its clicks, validating it).
+#[test]
+fn replay_ndcg_and_recall_match_numpy_standard_and_reachable() {
+    use medley::config::Config;
+    use medley::engine::Engine;
+    use medley::replay::{evaluate, read_corpus};
+    let engine = Engine::new(Config::embedded_default(), 1);
+    let relevance = medley::diversify::by_name("relevance").unwrap();
+    let cases = fixtures()["replay_metrics"].as_array().unwrap().clone();
+    assert_eq!(cases.len(), 30);
+    let mut differ = 0;
+    for (n, case) in cases.iter().enumerate() {
+        let line = serde_json::to_vec(&case["line"]).unwrap();
+        let corpus = read_corpus(&engine, &mut &line[..]).unwrap();
+        assert_eq!(corpus.len(), 1, "case {n}: {:?}", corpus.skipped);
+        let k = case["k"].as_u64().unwrap() as usize;
+        let p = evaluate(&corpus, relevance, 0.0, k).unwrap();
+        for (name, got) in [
+            ("ndcg", p.ndcg),
+            ("recall", p.recall),
+            ("ndcg_reachable", p.ndcg_reachable),
+            ("recall_reachable", p.recall_reachable),
+        ] {
+            let want = case[name].as_f64().unwrap();
+            assert!((got - want).abs() < 1e-12, "case {n} {name}: {got} != numpy {want}");
+        }
+        differ += usize::from((p.ndcg - p.ndcg_reachable).abs() > 1e-12);
+    }
+    assert!(differ >= 10, "the fixtures exercise clicks outside the candidates ({differ} cases)");
+}
