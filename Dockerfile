@@ -11,6 +11,7 @@ FROM rust:1.95-bookworm AS build
 WORKDIR /src
 COPY Cargo.toml Cargo.lock ./
 COPY src ./src
+COPY core ./core
 COPY config ./config
 COPY docs ./docs
 COPY benches ./benches

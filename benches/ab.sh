@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
-# Interleaved A/B of two builds of examples/profile_dpp: runs OLD and NEW alternately ROUNDS
+# Interleaved A/B of two builds of core/examples/profile_dpp: runs OLD and NEW alternately ROUNDS
 # times on one shape and prints both medians and their ratio. Alternating spreads the VM's slow
 # spells over both sides, which criterion runs minutes apart do not; use it for changes of a few
-# per cent. Build each side with `cargo build --release --example profile_dpp` and copy the binary.
+# per cent. Build each side with `cargo build --release -p medley-core --example profile_dpp` and copy the binary.
 #
 #   benches/ab.sh OLD NEW ROUNDS [N D K [clustered]]
 set -euo pipefail

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Print the README table from criterion's last run (target/criterion/*/*/new/estimates.json).
 
-Median time per call, GFLOP/s at the nominal flop counts of benches/kernels.rs, and the share of
+Median time per call, GFLOP/s at the nominal flop counts of core/benches/kernels.rs, and the share of
 the same-shape GEMV roofline measured in the same run."""
 import json
 import pathlib

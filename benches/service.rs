@@ -11,10 +11,10 @@ use std::hint::black_box;
 use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use medley::config::Config;
-use medley::engine::Engine;
-use medley::pool::Pool;
-use medley::wire::{decode_request, encode_b64_embedding};
+use medley::api::wire::{decode_request, encode_b64_embedding};
+use medley::serve::config::Config;
+use medley::serve::engine::Engine;
+use medley::serve::pool::Pool;
 use serde_json::json;
 
 /// One request body of `n` candidates in dimension `d`, embeddings as JSON arrays or base64.

@@ -9,13 +9,13 @@ use anyhow::Context as _;
 use clap::Parser as _;
 
 use medley::cli::{Cli, Command, LogFormat};
-use medley::config::Config;
-use medley::engine::Engine;
 use medley::http::{serve, AppState};
-use medley::metrics::Metrics;
-use medley::pool::Pool;
-use medley::reload::ConfigSource;
-use medley::shutdown;
+use medley::serve::config::Config;
+use medley::serve::engine::Engine;
+use medley::serve::metrics::Metrics;
+use medley::serve::pool::Pool;
+use medley::serve::reload::ConfigSource;
+use medley::serve::shutdown;
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
@@ -80,12 +80,12 @@ fn run(command: Command) -> anyhow::Result<()> {
                 ))
             };
             let mut writer = open_output(&output)?;
-            let summary = medley::batch::run(&engine, &pool, &mut reader, &mut writer)?;
+            let summary = medley::offline::batch::run(&engine, &pool, &mut reader, &mut writer)?;
             eprintln!("{summary}");
             Ok(())
         }
         Command::Sample { requests, candidates, dim, seed, with_clicks, b64, one, output } => {
-            let spec = medley::sample::SampleSpec {
+            let spec = medley::offline::sample::SampleSpec {
                 requests: if one { 1 } else { requests },
                 candidates: candidates.unwrap_or(if one { 6 } else { 200 }),
                 dim: dim.unwrap_or(if one { 4 } else { 32 }),
@@ -94,7 +94,7 @@ fn run(command: Command) -> anyhow::Result<()> {
                 b64,
             };
             let mut writer = open_output(&output)?;
-            medley::sample::write(&spec, &mut writer).context("writing the corpus")
+            medley::offline::sample::write(&spec, &mut writer).context("writing the corpus")
         }
         Command::Replay { input, algorithms, lambdas, k, out, pick } => {
             let algorithms = algorithms
@@ -104,15 +104,18 @@ fn run(command: Command) -> anyhow::Result<()> {
                         .with_context(|| format!("unknown algorithm {name:?} in --algorithms"))
                 })
                 .collect::<anyhow::Result<Vec<_>>>()?;
-            let lambdas =
-                medley::replay::parse_lambdas(&lambdas).map_err(anyhow::Error::msg).context("--lambdas")?;
-            let pick =
-                pick.map(|p| medley::replay::parse_pick(&p)).transpose().map_err(anyhow::Error::msg)?;
+            let lambdas = medley::offline::replay::parse_lambdas(&lambdas)
+                .map_err(anyhow::Error::msg)
+                .context("--lambdas")?;
+            let pick = pick
+                .map(|p| medley::offline::replay::parse_pick(&p))
+                .transpose()
+                .map_err(anyhow::Error::msg)?;
             anyhow::ensure!((1..=1000).contains(&k), "--k {k} is outside 1..=1000");
             // Replay validates on an unlocked default slice with the embedded limits.
             let engine = Engine::new(Config::embedded_default(), 1);
             let file = std::fs::File::open(&input).with_context(|| format!("opening {}", input.display()))?;
-            let corpus = medley::replay::read_corpus(&engine, &mut BufReader::new(file))
+            let corpus = medley::offline::replay::read_corpus(&engine, &mut BufReader::new(file))
                 .context("reading the corpus")?;
             for (line, why) in corpus.skipped.iter().take(5) {
                 eprintln!("medley replay: skipped line {line}: {why}");
@@ -122,13 +125,13 @@ fn run(command: Command) -> anyhow::Result<()> {
                 "no usable line in {} (each needs embeddings and \"clicked\")",
                 input.display()
             );
-            let opts = medley::replay::Options { algorithms, lambdas, k, out, pick };
-            print!("{}", medley::replay::run(&corpus, &opts)?);
+            let opts = medley::offline::replay::Options { algorithms, lambdas, k, out, pick };
+            print!("{}", medley::offline::replay::run(&corpus, &opts)?);
             Ok(())
         }
         Command::CheckConfig { file } => {
             let config = load_config(Some(file))?;
-            print!("{}", medley::config::describe(&config));
+            print!("{}", medley::serve::config::describe(&config));
             Ok(())
         }
     }

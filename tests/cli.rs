@@ -328,7 +328,7 @@ fn python_arm_hash_matches_the_server() {
             .expect("python3 on PATH");
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         let python: u64 = String::from_utf8(out.stdout).unwrap().trim().parse().unwrap();
-        assert_eq!(python, medley::config::arm_bucket(slice, unit, total), "{slice}/{unit}");
+        assert_eq!(python, medley::serve::config::arm_bucket(slice, unit, total), "{slice}/{unit}");
     }
 }
 

@@ -90,7 +90,7 @@ async fn deployment_matches_the_binary_and_its_probes_answer() {
 
     // Ports: the args bind all interfaces on the binary's default ports, and the container
     // declares the same numbers.
-    let defaults = medley::config::Config::from_toml(medley::config::DEFAULT_TOML).unwrap();
+    let defaults = medley::serve::config::Config::from_toml(medley::serve::config::DEFAULT_TOML).unwrap();
     let ports = ports(c);
     assert_eq!(listen.port(), defaults.server.listen.port());
     assert_eq!(admin_listen.port(), defaults.server.admin_listen.port());
@@ -124,7 +124,7 @@ async fn deployment_matches_the_binary_and_its_probes_answer() {
     assert_eq!(s(&volume["configMap"]["name"]), s(&configmap["metadata"]["name"]));
     let key = config_path.strip_prefix(s(&mount["mountPath"])).unwrap();
     let toml = s(&configmap["data"][key.to_str().unwrap()]);
-    let config = medley::config::Config::from_toml(toml)
+    let config = medley::serve::config::Config::from_toml(toml)
         .unwrap_or_else(|e| panic!("the ConfigMap's config is invalid: {e}"));
     assert!(config.slices.contains_key("default"));
 

@@ -11,7 +11,7 @@ use std::time::{Duration, Instant};
 
 use common::server::Server;
 use common::Rng;
-use medley::wire::encode_b64_embedding;
+use medley::api::wire::encode_b64_embedding;
 use serde_json::{json, Value};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::net::TcpStream;
@@ -763,7 +763,9 @@ mod properties {
         let field = |c: &Value| if c.get("embedding").is_some() { "embedding" } else { "embedding_b64" };
         let dim = |c: &Value| match c.get("embedding") {
             Some(e) => e.as_array().unwrap().len(),
-            None => medley::wire::decode_b64_embedding(c["embedding_b64"].as_str().unwrap()).unwrap().len(),
+            None => {
+                medley::api::wire::decode_b64_embedding(c["embedding_b64"].as_str().unwrap()).unwrap().len()
+            }
         };
         match m {
             Mutation::ScoreType(i, t) => v["candidates"][i % n]["score"] = t.clone(),

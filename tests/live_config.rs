@@ -429,7 +429,7 @@ async fn a_full_shadow_queue_drops_and_counts_without_failing_requests() {
         let e: Vec<f32> =
             c["embedding"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap() as f32).collect();
         c.as_object_mut().unwrap().remove("embedding");
-        c["embedding_b64"] = json!(medley::wire::encode_b64_embedding(&e));
+        c["embedding_b64"] = json!(medley::api::wire::encode_b64_embedding(&e));
     }
     // The primary is cheap (relevance); the shadow is DPP choosing 300 of 1500 in d = 256.
     body["slice"] = json!("home");

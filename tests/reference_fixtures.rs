@@ -100,9 +100,9 @@ fn gini_matches_mean_difference_definition() {
 /// the whole replay path (parsing the logged line, deduplicating its clicks, validating it).
 #[test]
 fn replay_ndcg_and_recall_match_numpy_standard_and_reachable() {
-    use medley::config::Config;
-    use medley::engine::Engine;
-    use medley::replay::{evaluate, read_corpus};
+    use medley::offline::replay::{evaluate, read_corpus};
+    use medley::serve::config::Config;
+    use medley::serve::engine::Engine;
     let engine = Engine::new(Config::embedded_default(), 1);
     let relevance = medley::diversify::by_name("relevance").unwrap();
     let cases = fixtures()["replay_metrics"].as_array().unwrap().clone();

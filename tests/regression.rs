@@ -86,7 +86,7 @@ fn issue13_1_only_content_events_trigger_a_reload() {
         AccessKind, AccessMode, CreateKind, MetadataKind, ModifyKind, RemoveKind, RenameMode,
     };
     use notify::EventKind;
-    let may = medley::reload::content_may_change;
+    let may = medley::serve::reload::content_may_change;
     for quiet in [
         EventKind::Access(AccessKind::Open(AccessMode::Any)),
         EventKind::Access(AccessKind::Read),
@@ -138,7 +138,7 @@ async fn issue13_2_a_file_invalid_alone_is_refused_though_a_runtime_slice_hides_
     assert_eq!(v["error"]["path"], "slices.default.algorithm");
     assert_eq!(metric_sum(&server, "medley_config_reload_failures_total{trigger=\"admin\"}").await, 1);
     // SIGHUP runs this same call on the signal; a test process must not signal itself.
-    assert!(server.state.reloader.reload(medley::reload::Trigger::Signal).is_err());
+    assert!(server.state.reloader.reload(medley::serve::reload::Trigger::Signal).is_err());
     assert_eq!(metric_sum(&server, "medley_config_reload_failures_total{trigger=\"sighup\"}").await, 1);
     assert_eq!(generation(&server).await, 2, "nothing was swapped");
 
@@ -397,7 +397,7 @@ fn issue13_3_sixty_clients_holding_15_mib_bodies_stay_within_512_mib() {
     let config = dir.join("medley.toml");
     std::fs::write(
         &config,
-        "[server]\nbody_timeout_ms = 60000\n[slices.default]\nalgorithm = \"dpp\"\nlambda = 0.3\nk = 10\n",
+        "[server]\nbody_timeout_ms = 60000\nrequest_timeout_ms = 60000\n[slices.default]\nalgorithm = \"dpp\"\nlambda = 0.3\nk = 10\n",
     )
     .unwrap();
     let (mut child, public, _admin) = spawn_server(&["--config", config.to_str().unwrap()], &[]);

@@ -5,11 +5,11 @@
 
 use std::process::Command;
 
-use medley::config::Config;
 use medley::diversify::by_name;
-use medley::engine::Engine;
-use medley::replay::{evaluate, read_corpus, Corpus};
-use medley::sample::{write, SampleSpec};
+use medley::offline::replay::{evaluate, read_corpus, Corpus};
+use medley::offline::sample::{write, SampleSpec};
+use medley::serve::config::Config;
+use medley::serve::engine::Engine;
 
 fn corpus() -> Corpus {
     let spec = SampleSpec { requests: 120, candidates: 80, dim: 16, seed: 11, with_clicks: true, b64: false };
@@ -93,7 +93,7 @@ fn the_binary_writes_a_complete_csv_and_well_formed_svg_and_picks() {
     assert!(report.contains("[slices.SLICE]"), "{report}");
     let csv = std::fs::read_to_string(dir.join("frontier.csv")).unwrap();
     let rows: Vec<&str> = csv.lines().collect();
-    assert_eq!(rows[0], medley::replay::CSV_HEADER);
+    assert_eq!(rows[0], medley::offline::replay::CSV_HEADER);
     assert_eq!(rows.len(), 1 + 1 + 4 * 3, "header, baseline, 4 algorithms x 3 lambdas");
     assert!(rows[1].starts_with("baseline,0,"));
     let svg = std::fs::read_to_string(dir.join("frontier.svg")).unwrap();

@@ -113,7 +113,7 @@ async fn base64_embeddings_give_the_same_slate_as_json_arrays() {
         let e: Vec<f32> =
             c["embedding"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap() as f32).collect();
         c.as_object_mut().unwrap().remove("embedding");
-        c["embedding_b64"] = json!(medley::wire::encode_b64_embedding(&e));
+        c["embedding_b64"] = json!(medley::api::wire::encode_b64_embedding(&e));
     }
     let (s1, a) = post_json(&client, &server.url("/v1/rerank"), &body).await;
     let (s2, b) = post_json(&client, &server.url("/v1/rerank"), &b64).await;
@@ -151,7 +151,7 @@ async fn every_validation_error_has_its_code_and_path() {
     let client = reqwest::Client::new();
     let error_schema = schema("ErrorBody");
     let ok = || vec![cand("a", json!([1.0, 0.0])), cand("b", json!([0.0, 1.0]))];
-    let nan_b64 = medley::wire::encode_b64_embedding(&[f32::NAN, 1.0]);
+    let nan_b64 = medley::api::wire::encode_b64_embedding(&[f32::NAN, 1.0]);
     let too_many: Vec<Value> = (0..10_001).map(|i| json!({"id": i.to_string(), "score": 1})).collect();
     let cases = vec![
         case(

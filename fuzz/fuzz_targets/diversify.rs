@@ -1,4 +1,4 @@
 //! Arbitrary validated slates through every registered diversifier.
 #![no_main]
 
-libfuzzer_sys::fuzz_target!(|data: &[u8]| medley::fuzz::diversifiers(data));
+libfuzzer_sys::fuzz_target!(|data: &[u8]| medley_core::fuzz::diversifiers(data));

@@ -15,9 +15,9 @@ use axum::Router;
 use subtle::ConstantTimeEq as _;
 
 use super::{ApiError, AppState};
-use crate::config::RawSlice;
-use crate::reload::{SliceChange, SliceChangeError, Trigger};
-use crate::wire::decode_json;
+use crate::api::wire::decode_json;
+use crate::serve::config::RawSlice;
+use crate::serve::reload::{SliceChange, SliceChangeError, Trigger};
 
 /// The admin routes, behind the token check.
 pub(super) fn routes(state: AppState) -> Router<AppState> {

@@ -25,7 +25,7 @@ use hyper_util::service::TowerToHyperService;
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
 
-use crate::shutdown::Shutdown;
+use crate::serve::shutdown::Shutdown;
 
 /// Per-connection limits, fixed at start.
 #[derive(Debug, Clone, Copy)]

@@ -9,8 +9,8 @@
 use axum::http::{header, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
 
-use crate::engine::RequestError;
-use crate::wire::ErrorBody;
+use crate::api::wire::ErrorBody;
+use crate::api::RequestError;
 
 /// Every way a request can fail at the HTTP layer.
 #[derive(Debug, thiserror::Error)]
@@ -93,7 +93,7 @@ pub enum ApiError {
     Unauthorized,
     /// A config change that does not validate (422); the old config keeps serving.
     #[error("config refused, the previous one keeps serving: {0}")]
-    InvalidConfig(#[from] crate::config::ConfigError),
+    InvalidConfig(#[from] crate::serve::config::ConfigError),
     /// `DELETE` of a slice that only the file defines (404).
     #[error("{0}")]
     NotRuntimeSlice(String),
@@ -164,7 +164,7 @@ impl ApiError {
                 "internal error; the service logged the detail and keeps serving, so the request may be retried",
                 None,
             ),
-            Self::InvalidConfig(crate::config::ConfigError::Invalid { field, .. }) => {
+            Self::InvalidConfig(crate::serve::config::ConfigError::Invalid { field, .. }) => {
                 ErrorBody::new(self.code(), self.to_string(), Some(field.clone()))
             }
             other => ErrorBody::new(other.code(), other.to_string(), None),

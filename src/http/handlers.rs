@@ -20,9 +20,9 @@ use futures_util::{stream, StreamExt};
 
 use super::body::{self, BodyLimits, Reservation};
 use super::{Admitted, ApiError, AppState};
-use crate::engine::Engine;
-use crate::shadow::ShadowRunner;
-use crate::wire::decode_request;
+use crate::api::wire::decode_request;
+use crate::serve::engine::Engine;
+use crate::serve::shadow::ShadowRunner;
 
 /// Bodies shorter than this are decoded inline on the async worker (about 100 candidates with
 /// 32-dimension JSON embeddings); larger ones go to the pool with the kernel.
@@ -45,8 +45,8 @@ struct Served {
 }
 
 fn serve_prepared(
-    prepared: crate::engine::Prepared,
-    ws: &mut crate::Workspace,
+    prepared: crate::serve::engine::Prepared,
+    ws: &mut medley_core::Workspace,
     shadow: &ShadowRunner,
 ) -> Result<Served, ApiError> {
     let reranked = prepared.run(ws)?;
@@ -95,7 +95,7 @@ async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Resul
     };
     let served = match tokio::time::timeout(deadline, work).await {
         Err(_) => return Err(ApiError::DeadlineExceeded { ms: deadline.as_millis() }),
-        Ok(Err(crate::pool::PoolError::Panicked(message))) => {
+        Ok(Err(crate::serve::pool::PoolError::Panicked(message))) => {
             state.metrics.panics.inc();
             return Err(ApiError::Panicked(message));
         }

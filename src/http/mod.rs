@@ -29,13 +29,13 @@ use tower_http::catch_panic::CatchPanicLayer;
 pub use error::{ApiError, InternalDetail, RETRY_AFTER_SECONDS};
 pub use handlers::{INLINE_BODY_BELOW, OPENAPI_JSON};
 
-use crate::config::ConfigError;
-use crate::engine::Engine;
-use crate::metrics::Metrics;
-use crate::pool::{panic_message, Pool};
-use crate::reload::{ConfigSource, Reloader};
-use crate::shadow::ShadowRunner;
-use crate::shutdown::Shutdown;
+use crate::serve::config::ConfigError;
+use crate::serve::engine::Engine;
+use crate::serve::metrics::Metrics;
+use crate::serve::pool::{panic_message, Pool};
+use crate::serve::reload::{ConfigSource, Reloader};
+use crate::serve::shadow::ShadowRunner;
+use crate::serve::shutdown::Shutdown;
 
 /// Why the service could not start.
 #[derive(Debug, thiserror::Error)]
@@ -238,14 +238,14 @@ pub async fn serve(public: TcpListener, admin: TcpListener, state: AppState, shu
         mark.started().await;
         draining.store(true, Ordering::Relaxed);
     });
-    let watcher = match crate::reload::watch(state.reloader.clone(), shutdown.clone()) {
+    let watcher = match crate::serve::reload::watch(state.reloader.clone(), shutdown.clone()) {
         Ok(w) => w,
         Err(e) => {
             tracing::warn!(error = %e, "cannot watch the config file; reload with SIGHUP or POST /admin/reload");
             None
         }
     };
-    let sighup = tokio::spawn(crate::reload::on_sighup(state.reloader.clone(), shutdown.clone()));
+    let sighup = tokio::spawn(crate::serve::reload::on_sighup(state.reloader.clone(), shutdown.clone()));
     let shadow = state.shadow.clone();
     let limits = {
         let engine = state.engine.load();

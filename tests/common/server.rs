@@ -5,9 +5,9 @@ use std::net::SocketAddr;
 use std::sync::Arc;
 
 use medley::http::{serve, AppState};
-use medley::metrics::Metrics;
-use medley::reload::ConfigSource;
-use medley::shutdown::{self, Trigger};
+use medley::serve::metrics::Metrics;
+use medley::serve::reload::ConfigSource;
+use medley::serve::shutdown::{self, Trigger};
 use serde_json::{json, Value};
 
 use super::Rng;
@@ -69,7 +69,7 @@ impl Server {
 
     /// The embedded default config.
     pub async fn start_default() -> Self {
-        Self::start(medley::config::DEFAULT_TOML).await
+        Self::start(medley::serve::config::DEFAULT_TOML).await
     }
 
     /// Starts shutdown without waiting.

@@ -59,7 +59,7 @@ impl Rng {
 
     fn next_u64(&mut self) -> u64 {
         self.state = self.state.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        crate::config::mix64(self.state)
+        crate::serve::config::mix64(self.state)
     }
 
     /// Uniform in (0, 1).
@@ -208,7 +208,7 @@ fn request(
         let embedding: Vec<f32> = e.iter().map(|&x| x as f32).collect();
         let mut c = json!({"id": id, "score": (score * 1e6).round() / 1e6, "category": name});
         if spec.b64 {
-            c["embedding_b64"] = json!(crate::wire::encode_b64_embedding(&embedding));
+            c["embedding_b64"] = json!(crate::api::wire::encode_b64_embedding(&embedding));
         } else {
             c["embedding"] = json!(embedding);
         }
@@ -255,7 +255,7 @@ mod tests {
         let a = corpus(&spec);
         assert_eq!(a, corpus(&spec));
         assert_ne!(a, corpus(&SampleSpec { seed: 8, ..spec }));
-        let engine = crate::engine::Engine::new(crate::config::Config::embedded_default(), 1);
+        let engine = crate::serve::engine::Engine::new(crate::serve::config::Config::embedded_default(), 1);
         for line in a.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
             let v: Value = serde_json::from_slice(line).unwrap();
             let ids: Vec<&str> =
@@ -263,7 +263,7 @@ mod tests {
             let clicked = v["clicked"].as_array().unwrap();
             assert!((1..=3).contains(&clicked.len()));
             assert!(clicked.iter().all(|c| ids.contains(&c.as_str().unwrap())));
-            let request = crate::wire::decode_request(line).unwrap();
+            let request = crate::api::wire::decode_request(line).unwrap();
             engine.prepare(request).unwrap();
         }
     }

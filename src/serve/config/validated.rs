@@ -1,153 +1,18 @@
-//! Configuration: the TOML a deployment writes ([`RawConfig`]) and the validated [`Config`] the
-//! engine serves.
-//!
-//! Parsing and validation are one step, [`Config::from_toml`], shared by `medley serve`,
-//! `medley check-config` and `medley rerank`, so a file that one of them accepts all of them
-//! accept. The embedded default (`config/default.toml`) is compiled in and goes through the same
-//! path. Unknown keys are refused, naming the key: a typo in a config must not silently fall back
-//! to a default.
+//! The validated configuration the engine serves, and the checks that build it from a
+//! [`RawConfig`]: every value in range, every algorithm known, every slice and arm name label-safe,
+//! and the diversifiers resolved, so a swap publishes something ready to run.
 
 use std::collections::BTreeMap;
 use std::net::SocketAddr;
 use std::time::Duration;
 
-use serde::Deserialize;
+use medley_core::diversify::{self, Diversifier};
+use medley_core::model::{Limits, ScoreTransform};
 
-use crate::diversify::{self, Diversifier};
-use crate::model::{Limits, ScoreTransform};
-
-/// The configuration compiled into the binary; `medley serve` without `--config` serves it.
-pub const DEFAULT_TOML: &str = include_str!("../config/default.toml");
-
-/// The slice a request without a `slice` field is served by; every config must define it.
-pub const DEFAULT_SLICE: &str = "default";
-
-/// Why a configuration was refused.
-#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
-pub enum ConfigError {
-    /// Not TOML, a wrong type, or an unknown key. The message names the key and the line.
-    #[error("{0}")]
-    Parse(String),
-    /// Well-formed TOML with a value the service cannot serve.
-    #[error("{field}: {message}")]
-    Invalid {
-        /// Dotted path of the offending key (`slices.home.lambda`).
-        field: String,
-        /// What is wrong and what is allowed.
-        message: String,
-    },
-}
-
-fn invalid(field: impl Into<String>, message: impl Into<String>) -> ConfigError {
-    ConfigError::Invalid { field: field.into(), message: message.into() }
-}
-
-/// The file as written: every key optional except the slices themselves.
-#[derive(Debug, Clone, Default, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawConfig {
-    /// Listeners and limits.
-    #[serde(default)]
-    pub server: RawServer,
-    /// Traffic slices by name.
-    #[serde(default)]
-    pub slices: BTreeMap<String, RawSlice>,
-}
-
-/// The `[server]` table.
-#[derive(Debug, Clone, Default, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawServer {
-    /// Public listener (`"127.0.0.1:8080"`).
-    pub listen: Option<String>,
-    /// Private listener for metrics and health (`"127.0.0.1:8081"`).
-    pub admin_listen: Option<String>,
-    /// Largest accepted request body, and the longest line on the stream endpoint.
-    pub max_body_bytes: Option<u64>,
-    /// Request body bytes held at once across all requests (reserved at the declared
-    /// Content-Length, or as a chunked body or stream line arrives); beyond it, 503 at once.
-    pub max_inflight_body_bytes: Option<u64>,
-    /// Most candidates in one request.
-    pub max_candidates: Option<u64>,
-    /// Largest embedding dimension.
-    pub max_dim: Option<u64>,
-    /// Largest k.
-    pub max_k: Option<u64>,
-    /// Deadline for one request (or one stream line), in milliseconds.
-    pub request_timeout_ms: Option<u64>,
-    /// Requests processed at once; beyond it the service answers 503 at once.
-    pub max_in_flight: Option<u64>,
-    /// Threads of the kernel pool; 0 means one per core.
-    pub pool_threads: Option<u64>,
-    /// Lines of one stream processed at once.
-    pub stream_in_flight: Option<u64>,
-    /// Slates whose estimated work is below this run inline on the async worker.
-    pub inline_work_below: Option<u64>,
-    /// Shadow jobs waiting for the shadow worker; beyond it new ones are dropped and counted.
-    pub shadow_queue: Option<u64>,
-    /// Time a connection has to send a request's headers, counted from when it opens or from
-    /// the end of the previous response: the slow-header limit and the keep-alive idle limit.
-    pub header_timeout_ms: Option<u64>,
-    /// Time a request has to send its whole body once its headers are in (on the stream
-    /// endpoint: the longest gap between body chunks).
-    pub body_timeout_ms: Option<u64>,
-    /// Open connections per listener; beyond it new connections wait in the accept backlog.
-    pub max_connections: Option<u64>,
-}
-
-/// One `[slices.NAME]` table.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawSlice {
-    /// Diversifier name (`relevance`, `mmr`, `dpp`, `quota`).
-    pub algorithm: Option<String>,
-    /// Diversity weight in `[0, 1]`.
-    pub lambda: Option<f64>,
-    /// Slate length.
-    pub k: Option<u64>,
-    /// `minmax` or `none`.
-    pub score_transform: Option<String>,
-    /// Hard cap on items per category in one slate.
-    pub max_per_category: Option<u64>,
-    /// When true, requests may not override `algorithm`, `lambda` or `k`.
-    pub locked: Option<bool>,
-    /// Weighted A/B arms; each overrides the slice's settings it names.
-    pub arms: Option<Vec<RawArm>>,
-    /// A diversifier run beside production on a sample of requests, never affecting answers.
-    pub shadow: Option<RawShadow>,
-}
-
-/// One `[[slices.NAME.arms]]` entry.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawArm {
-    /// Arm name, reported in responses and metric labels.
-    pub name: String,
-    /// Relative share of units assigned to this arm.
-    pub weight: u64,
-    /// Overrides the slice's algorithm.
-    pub algorithm: Option<String>,
-    /// Overrides the slice's lambda.
-    pub lambda: Option<f64>,
-    /// Overrides the slice's k.
-    pub k: Option<u64>,
-    /// Overrides the slice's score transform.
-    pub score_transform: Option<String>,
-    /// Overrides the slice's per-category cap.
-    pub max_per_category: Option<u64>,
-}
-
-/// The `[slices.NAME.shadow]` table.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawShadow {
-    /// The shadow diversifier.
-    pub algorithm: String,
-    /// Its lambda (default 0.5).
-    pub lambda: Option<f64>,
-    /// Share of the slice's requests shadowed, in `[0, 1]` (default 1).
-    pub sample_rate: Option<f64>,
-}
+use super::error::{invalid, ConfigError};
+use super::hash::{arm_bucket, fnv1a64};
+use super::raw::{RawConfig, RawServer, RawSlice};
+use super::{DEFAULT_SLICE, DEFAULT_TOML};
 
 /// Validated server settings.
 #[derive(Debug, Clone, PartialEq)]
@@ -170,7 +35,7 @@ pub struct ServerSettings {
     pub pool_threads: usize,
     /// Stream lines in flight per stream.
     pub stream_in_flight: usize,
-    /// Inline cut-off in work units (see [`crate::Diversifier::work`]).
+    /// Inline cut-off in work units (see [`medley_core::Diversifier::work`]).
     pub inline_work_below: u64,
     /// Capacity of the shadow queue.
     pub shadow_queue: usize,
@@ -256,42 +121,6 @@ impl Slice {
         // Unreachable: bucket < total_weight = the last upper bound.
         &self.arms[self.arms.len() - 1]
     }
-}
-
-/// The stable 64-bit hash that assigns units to arms.
-///
-/// FNV-1a 64 (offset basis 0xcbf29ce484222325, prime 0x100000001b3) over the bytes of the slice
-/// name, one 0x00 byte, and the bytes of `unit_id`; then the SplitMix64 finaliser
-/// (`z ^= z >> 30; z *= 0xbf58476d1ce4e5b9; z ^= z >> 27; z *= 0x94d049bb133111eb; z ^= z >> 31`)
-/// so the high bits are well mixed. The README has a five-line Python version.
-#[must_use]
-pub fn arm_hash(slice: &str, unit_id: &str) -> u64 {
-    mix64(fnv1a64(slice.as_bytes().iter().chain(&[0u8]).chain(unit_id.as_bytes())))
-}
-
-/// FNV-1a 64 (Fowler, Noll & Vo): offset basis 0xcbf29ce484222325, prime 0x100000001b3.
-#[must_use]
-pub fn fnv1a64<'a>(bytes: impl IntoIterator<Item = &'a u8>) -> u64 {
-    bytes
-        .into_iter()
-        .fold(0xcbf2_9ce4_8422_2325, |h: u64, &b| (h ^ u64::from(b)).wrapping_mul(0x0000_0100_0000_01b3))
-}
-
-/// The SplitMix64 finaliser (Steele, Lea & Flood, OOPSLA 2014): a bijection of u64 whose output
-/// bits each depend on all input bits. Shared by the arm hash, shadow sampling and the corpus
-/// generator.
-#[must_use]
-pub fn mix64(mut z: u64) -> u64 {
-    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-    z ^ (z >> 31)
-}
-
-/// The unit's bucket in `0..total_weight`: `(arm_hash · total_weight) >> 64`, which uses the
-/// hash's high bits and has no modulo bias beyond 2⁻⁶⁴·total_weight.
-#[must_use]
-pub fn arm_bucket(slice: &str, unit_id: &str, total_weight: u64) -> u64 {
-    ((u128::from(arm_hash(slice, unit_id)) * u128::from(total_weight)) >> 64) as u64
 }
 
 /// A configuration the engine can serve.
@@ -422,7 +251,7 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
     let inline_work_below = in_range(
         "server.inline_work_below",
         raw.inline_work_below,
-        crate::pool::INLINE_WORK_BELOW,
+        crate::serve::pool::INLINE_WORK_BELOW,
         0..=u64::MAX,
     )?;
     let shadow_queue = in_range("server.shadow_queue", raw.shadow_queue, 64, 1..=65_536)?;
@@ -602,60 +431,6 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
     Ok(Slice { name: name.into(), arms, total_weight, locked: raw.locked.unwrap_or(false), shadow, raw })
 }
 
-/// A plain-text summary of what `config` serves, for `medley check-config`.
-#[must_use]
-pub fn describe(config: &Config) -> String {
-    use std::fmt::Write as _;
-    let s = &config.server;
-    let mut out = String::new();
-    let _ = writeln!(out, "config ok");
-    let _ = writeln!(out, "listen {} (public), {} (private)", s.listen, s.admin_listen);
-    let _ = writeln!(
-        out,
-        "limits: body {} bytes ({} in flight), {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \
-         header/idle timeout {} ms, body timeout {} ms, {} connections",
-        s.max_body_bytes,
-        s.max_inflight_body_bytes,
-        s.limits.max_candidates,
-        s.limits.max_dim,
-        s.limits.max_k,
-        s.request_timeout.as_millis(),
-        s.max_in_flight,
-        s.pool_threads,
-        s.header_timeout.as_millis(),
-        s.body_timeout.as_millis(),
-        s.max_connections
-    );
-    for slice in config.slices.values() {
-        let _ = writeln!(out, "slice {}: locked={}", slice.name, slice.locked);
-        for arm in &slice.arms {
-            let st = &arm.settings;
-            let cap = st.max_per_category.map_or_else(|| "none".to_owned(), |c| c.to_string());
-            let share = 100.0 * arm.weight as f64 / slice.total_weight as f64;
-            let _ = writeln!(
-                out,
-                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}",
-                arm.name,
-                st.algorithm.name(),
-                st.lambda,
-                st.k,
-                st.score_transform.name(),
-                cap,
-            );
-        }
-        if let Some(sh) = &slice.shadow {
-            let _ = writeln!(
-                out,
-                "  shadow: algorithm={} lambda={} sample_rate={}",
-                sh.algorithm.name(),
-                sh.lambda,
-                sh.sample_rate
-            );
-        }
-    }
-    out
-}
-
 /// Slice names become metric label values; keep them short and plain.
 fn is_label_safe(name: &str) -> bool {
     (1..=64).contains(&name.len())
@@ -798,28 +573,6 @@ max_per_category = 3
         assert!(err("[slices.default]\n[slices.default.shadow]\nalgorithm = \"x\"\n")
             .starts_with("slices.default.shadow.algorithm"));
         assert!(err(&arm("colour = 1\n")).contains("unknown field `colour`"));
-    }
-
-    /// FNV-1a 64 test vectors: the empty string hashes to the offset basis 0xcbf29ce484222325
-    /// and "a" to 0xaf63dc4c8601ec8c (the published FNV test suite; values from memory, and the
-    /// first is the algorithm's definition). Checked here through the unfinalised loop.
-    #[test]
-    fn fnv1a_core_matches_published_vectors() {
-        let fnv = |bytes: &[u8]| {
-            let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-            for &b in bytes {
-                h ^= u64::from(b);
-                h = h.wrapping_mul(0x0000_0100_0000_01b3);
-            }
-            h
-        };
-        assert_eq!(fnv(b""), 0xcbf2_9ce4_8422_2325);
-        assert_eq!(fnv(b"a"), 0xaf63_dc4c_8601_ec8c);
-        // arm_hash = splitmix finaliser of fnv("home\0user-1").
-        let mut z = fnv(b"home\0user-1");
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        assert_eq!(arm_hash("home", "user-1"), z ^ (z >> 31));
     }
 
     /// 10 000 unit ids over a 90/10 split: the treatment count is Binomial(10 000, 0.1), mean

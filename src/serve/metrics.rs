@@ -287,7 +287,13 @@ impl Metrics {
     }
 
     /// Records one shadow comparison.
-    pub fn observe_shadow(&self, slice: &str, algorithm: &str, seconds: f64, c: &crate::shadow::Comparison) {
+    pub fn observe_shadow(
+        &self,
+        slice: &str,
+        algorithm: &str,
+        seconds: f64,
+        c: &medley_core::measures::Comparison,
+    ) {
         self.shadow_runs.with_label_values(&[slice]).inc();
         self.shadow_duration.with_label_values(&[slice, algorithm]).observe(seconds);
         self.shadow_overlap.with_label_values(&[slice]).observe(c.overlap);

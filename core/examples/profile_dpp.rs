@@ -1,13 +1,13 @@
 //! Runs DPP in a loop and prints the mean time per call; for
 //! `perf record ./target/release/examples/profile_dpp` when tuning the kernel.
 //!
-//! Run: `cargo run --release --example profile_dpp -- [N D K [clustered]]` (default 2000 128 100,
+//! Run: `cargo run --release -p medley-core --example profile_dpp -- [N D K [clustered]]` (default 2000 128 100,
 //! unclustered random rows; `clustered` uses the bench's 8-cluster slates). Environment:
 //! `CALLS=n` sets the number of calls (e.g. for a longer `perf record`); `DPP_STRATEGY=lazy` or
 //! `screened` picks a strategy instead of the default `auto`.
 
-use medley::diversify::{Dpp, DppStrategy};
-use medley::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
+use medley_core::diversify::{Dpp, DppStrategy};
+use medley_core::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 
 fn main() {
     let args: Vec<String> = std::env::args().skip(1).collect();

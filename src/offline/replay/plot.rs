@@ -7,7 +7,7 @@
 
 use plotters::prelude::*;
 
-use crate::replay::Point;
+use super::frontier::Point;
 
 /// Colours for up to six algorithms, then repeated.
 const COLOURS: [RGBColor; 6] = [

@@ -31,10 +31,10 @@ use std::time::Duration;
 
 use arc_swap::ArcSwap;
 
-use crate::config::{Config, ConfigError, RawConfig, RawSlice, DEFAULT_TOML};
-use crate::engine::Engine;
-use crate::metrics::Metrics;
-use crate::shutdown::Shutdown;
+use crate::serve::config::{Config, ConfigError, RawConfig, RawSlice, DEFAULT_TOML};
+use crate::serve::engine::Engine;
+use crate::serve::metrics::Metrics;
+use crate::serve::shutdown::Shutdown;
 
 /// What asked for a swap; the label of the reload counters.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -10,163 +10,12 @@
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
-use crate::config::{Config, Shadow, DEFAULT_SLICE};
-use crate::diversify::{self, Diversifier, KernelError, Workspace};
-use crate::measures;
-use crate::model::{CandidateInput, Field, Params, RerankInput, Selection, ValidationError, MAX_LABEL_BYTES};
-use crate::wire::{decode_b64_embedding, Diversity, Item, RerankRequest, RerankResponse};
-
-/// Why one request cannot be served. Codes are part of the wire contract.
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-pub enum RequestError {
-    /// The body is not JSON.
-    #[error("the body is not valid JSON: {message}")]
-    MalformedJson {
-        /// serde_json's description, with line and column.
-        message: String,
-    },
-    /// JSON of the wrong shape: a wrong type, a missing or repeated field.
-    #[error("{message}")]
-    InvalidField {
-        /// serde_json's description.
-        message: String,
-        /// Path of the field at fault.
-        path: Option<String>,
-    },
-    /// `request_id`, `unit_id` or `slice` longer than [`MAX_LABEL_BYTES`] (the same code as an
-    /// over-long candidate id).
-    #[error("{field} is {got} bytes; the limit is {max}")]
-    LabelTooLong {
-        /// The request field.
-        field: &'static str,
-        /// Its length in bytes.
-        got: usize,
-        /// The limit.
-        max: usize,
-    },
-    /// No slice of that name is configured.
-    #[error("unknown slice {name:?}; configured slices: {known}")]
-    UnknownSlice {
-        /// Requested slice.
-        name: String,
-        /// Configured names, comma-separated.
-        known: String,
-    },
-    /// The slice refuses per-request overrides of this field.
-    #[error(
-        "slice {slice:?} is locked: it serves its configured {field} and refuses overrides; drop the field"
-    )]
-    SliceLocked {
-        /// The slice.
-        slice: String,
-        /// `algorithm`, `lambda` or `k`.
-        field: &'static str,
-    },
-    /// No diversifier of that name.
-    #[error("unknown algorithm {name:?}; known: {known}")]
-    UnknownAlgorithm {
-        /// Requested name.
-        name: String,
-        /// Registry names, comma-separated.
-        known: String,
-    },
-    /// `embedding_b64` that does not decode to f32 values.
-    #[error("candidate {index}: embedding_b64 {reason}")]
-    InvalidBase64 {
-        /// Candidate index.
-        index: usize,
-        /// What is wrong.
-        reason: String,
-    },
-    /// Both `embedding` and `embedding_b64` on one candidate.
-    #[error("candidate {index} has both embedding and embedding_b64; send one")]
-    ConflictingEmbedding {
-        /// Candidate index.
-        index: usize,
-    },
-    /// A value check on the slate or its parameters.
-    #[error("{error}")]
-    Invalid {
-        /// The check that failed.
-        error: ValidationError,
-        /// Whether the failing candidate sent its embedding as base64 (for the path).
-        b64: bool,
-    },
-    /// A kernel refused validated input: a bug between validation and kernel.
-    #[error("internal error: {0}")]
-    Kernel(#[from] KernelError),
-}
-
-impl RequestError {
-    /// The stable snake_case code.
-    #[must_use]
-    pub fn code(&self) -> &'static str {
-        match self {
-            Self::MalformedJson { .. } => "malformed_json",
-            Self::InvalidField { .. } => "invalid_field",
-            Self::LabelTooLong { .. } => "too_long",
-            Self::UnknownSlice { .. } => "unknown_slice",
-            Self::SliceLocked { .. } => "slice_locked",
-            Self::UnknownAlgorithm { .. } => "unknown_algorithm",
-            Self::InvalidBase64 { .. } => "invalid_base64",
-            Self::ConflictingEmbedding { .. } => "conflicting_embedding",
-            Self::Invalid { error, .. } => match error {
-                ValidationError::TooManyCandidates { .. } => "too_many_candidates",
-                ValidationError::TooLong { .. } => "too_long",
-                ValidationError::DuplicateId { .. } => "duplicate_id",
-                ValidationError::NonFinite { .. } => "non_finite",
-                ValidationError::MissingEmbedding { .. } => "missing_embedding",
-                ValidationError::DimensionMismatch { .. } => "dimension_mismatch",
-                ValidationError::DimensionOutOfRange { .. } => "dimension_out_of_range",
-                ValidationError::ZeroNorm { .. } => "zero_norm_embedding",
-                ValidationError::KOutOfRange { .. } => "k_out_of_range",
-                ValidationError::LambdaOutOfRange { .. } => "lambda_out_of_range",
-            },
-            Self::Kernel(_) => "internal",
-        }
-    }
-
-    /// The JSON path of the field at fault, when one field is.
-    #[must_use]
-    pub fn path(&self) -> Option<String> {
-        let embedding = |index: usize, b64: bool| {
-            Some(format!("candidates[{index}].{}", if b64 { "embedding_b64" } else { "embedding" }))
-        };
-        match self {
-            Self::MalformedJson { .. } | Self::Kernel(_) => None,
-            Self::InvalidField { path, .. } => path.clone(),
-            Self::LabelTooLong { field, .. } => Some((*field).into()),
-            Self::UnknownSlice { .. } => Some("slice".into()),
-            Self::SliceLocked { field, .. } => Some((*field).into()),
-            Self::UnknownAlgorithm { .. } => Some("algorithm".into()),
-            Self::InvalidBase64 { index, .. } => embedding(*index, true),
-            Self::ConflictingEmbedding { index } => Some(format!("candidates[{index}]")),
-            Self::Invalid { error, b64 } => match *error {
-                ValidationError::TooManyCandidates { .. } => Some("candidates".into()),
-                ValidationError::DuplicateId { index, .. } => Some(format!("candidates[{index}].id")),
-                ValidationError::TooLong { index, field, .. } => {
-                    Some(format!("candidates[{index}].{}", field.name()))
-                }
-                ValidationError::NonFinite { index, field: Field::Embedding } => embedding(index, *b64),
-                ValidationError::NonFinite { index, field } => {
-                    Some(format!("candidates[{index}].{}", field.name()))
-                }
-                ValidationError::MissingEmbedding { index, .. }
-                | ValidationError::DimensionMismatch { index, .. }
-                | ValidationError::DimensionOutOfRange { index, .. }
-                | ValidationError::ZeroNorm { index } => embedding(index, *b64),
-                ValidationError::KOutOfRange { .. } => Some("k".into()),
-                ValidationError::LambdaOutOfRange { .. } => Some("lambda".into()),
-            },
-        }
-    }
-
-    /// True for errors that are the service's fault, not the caller's.
-    #[must_use]
-    pub fn is_internal(&self) -> bool {
-        matches!(self, Self::Kernel(_))
-    }
-}
+use crate::api::wire::{decode_b64_embedding, Diversity, Item, RerankRequest, RerankResponse};
+use crate::api::RequestError;
+use crate::serve::config::{Config, Shadow, DEFAULT_SLICE};
+use medley_core::diversify::{self, Diversifier, Workspace};
+use medley_core::measures;
+use medley_core::model::{CandidateInput, Params, RerankInput, Selection, ValidationError, MAX_LABEL_BYTES};
 
 /// A validated config and its generation number: what one request reads at its start.
 #[derive(Debug, Clone)]
@@ -298,7 +147,7 @@ fn sampled(rate: f64) -> bool {
     if rate >= 1.0 {
         return true;
     }
-    let z = crate::config::mix64(COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed));
+    let z = crate::serve::config::mix64(COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed));
     ((z >> 11) as f64) / ((1u64 << 53) as f64) < rate
 }
 

@@ -13,9 +13,9 @@ use std::time::{Duration, Instant};
 use anyhow::Context as _;
 use rayon::prelude::*;
 
-use crate::engine::Engine;
-use crate::pool::{run_here, Pool};
-use crate::wire::{decode_request, ErrorBody};
+use crate::api::wire::{decode_request, ErrorBody};
+use crate::serve::engine::Engine;
+use crate::serve::pool::{run_here, Pool};
 
 /// Lines served per parallel chunk.
 pub const CHUNK_LINES: usize = 2048;
@@ -54,7 +54,7 @@ fn serve_line(engine: &Engine, number: u64, line: &[u8]) -> (Vec<u8>, bool) {
     let outcome = run_here(|ws| {
         let prepared = engine.prepare(decode_request(line)?)?;
         let reranked = prepared.run(ws)?;
-        Ok::<_, crate::engine::RequestError>(reranked.to_response())
+        Ok::<_, crate::api::RequestError>(reranked.to_response())
     });
     match outcome {
         Ok(Ok(response)) => match serde_json::to_vec(&response) {

@@ -3,14 +3,14 @@
 //! `http/`).
 //!
 //! DTOs are plain serde structs that mirror the documented JSON (docs/openapi.json). Nothing here
-//! validates values; [`crate::engine::Engine::prepare`] turns a [`RerankRequest`] into the
+//! validates values; `serve::engine::Engine::prepare` turns a [`RerankRequest`] into the
 //! validated types the kernels trust. Decoding takes the fast path (plain `serde_json`) and, only
 //! when that fails, decodes again with `serde_path_to_error` to name the field at fault.
 //! Unknown fields are accepted and ignored, so callers can add fields before we read them.
 
 use serde::{Deserialize, Serialize};
 
-use crate::engine::RequestError;
+use super::RequestError;
 
 /// One re-rank request.
 #[derive(Debug, Clone, Default, PartialEq, Deserialize)]

@@ -12,11 +12,11 @@ use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
-use crate::diversify::Workspace;
+use medley_core::diversify::Workspace;
 
 /// Default inline cut-off in work units.
 ///
-/// A work unit is roughly one multiply-add of the kernel ([`crate::Diversifier::work`]); DPP at
+/// A work unit is roughly one multiply-add of the kernel ([`medley_core::Diversifier::work`]); DPP at
 /// (N, d, k) = (500, 64, 50) is 1.9 M units and ran in 400–550 µs on the 2-vCPU dev VM, so
 /// 100 000 units is about 25 µs of kernel, about four times the 6 µs hop to the pool and back:
 /// below it the hop is a large share of the work, and a stall that short does not hurt the
@@ -160,7 +160,7 @@ mod tests {
 
     #[test]
     fn estimates_order_algorithms_by_cost() {
-        use crate::diversify::by_name;
+        use medley_core::diversify::by_name;
         let (dpp, relevance) = (by_name("dpp").unwrap(), by_name("relevance").unwrap());
         assert_eq!(dpp.work(500, 64, 50), 500 * 50 * 64 + 2 * 50 * 50 * 64);
         assert_eq!(relevance.work(1024, 64, 50), 1024 * 11);
@@ -185,7 +185,7 @@ mod tests {
 
     /// A DPP run on `n` random rows of dimension `d`, then the bytes its workspace kept.
     async fn retained_after_dpp(pool: &Pool, n: usize, d: usize) -> usize {
-        use crate::{CandidateInput, Diversifier, Limits, Params, RerankInput, ScoreTransform};
+        use medley_core::{CandidateInput, Diversifier, Limits, Params, RerankInput, ScoreTransform};
         let mut state = 7u64;
         let mut next = move || {
             state = state.wrapping_mul(6_364_136_223_846_793_005).wrapping_add(1_442_695_040_888_963_407);
@@ -202,7 +202,7 @@ mod tests {
         let limits = Limits { max_candidates: n, ..Limits::default() };
         let input = RerankInput::new(cands, ScoreTransform::MinMax, true, &limits).unwrap();
         let params = Params::new(3, 0.5, &limits).unwrap();
-        pool.run(u64::MAX, move |ws| crate::diversify::Dpp.select(&input, &params, ws).unwrap())
+        pool.run(u64::MAX, move |ws| medley_core::diversify::Dpp.select(&input, &params, ws).unwrap())
             .await
             .unwrap();
         pool.run(u64::MAX, |ws| ws.retained_bytes()).await.unwrap()

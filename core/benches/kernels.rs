@@ -10,8 +10,8 @@
 #![allow(unsafe_code, missing_docs)]
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
-use medley::diversify::{reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance};
-use medley::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
+use medley_core::diversify::{reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance};
+use medley_core::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 use std::hint::black_box;
 use std::time::Duration;
 

@@ -1,0 +1,170 @@
+//! The frontier's cells and what is read off them: [`Point`] (one cell's means), the lambda
+//! grid and `--pick` rule parsers, the pick itself, and the rows of `frontier.csv`. Shared by the
+//! evaluation that fills cells, the report and the plot.
+
+/// One cell of the grid.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Point {
+    /// Algorithm.
+    pub algorithm: &'static str,
+    /// Lambda.
+    pub lambda: f64,
+    /// Mean recall@k over all logged clicks.
+    pub recall: f64,
+    /// Mean nDCG@k over all logged clicks (Järvelin & Kekäläinen 2002).
+    pub ndcg: f64,
+    /// Mean recall@k over the clicked candidates only.
+    pub recall_reachable: f64,
+    /// Mean nDCG@k over the clicked candidates only.
+    pub ndcg_reachable: f64,
+    /// Mean relevance retained.
+    pub relevance_retained: f64,
+    /// Mean category entropy, bits.
+    pub entropy: f64,
+    /// Mean intra-list distance.
+    pub ild: f64,
+    /// Mean distinct categories.
+    pub distinct: f64,
+    /// Distinct items exposed ÷ distinct items offered.
+    pub coverage: f64,
+    /// Gini coefficient of item exposure over offered items.
+    pub gini: f64,
+}
+
+/// Parses `0,0.1,0.5` or `start:end:step` (inclusive of `end` within rounding).
+///
+/// # Errors
+/// A message naming the bad part.
+pub fn parse_lambdas(text: &str) -> Result<Vec<f64>, String> {
+    let check =
+        |x: f64| if (0.0..=1.0).contains(&x) { Ok(x) } else { Err(format!("lambda {x} is outside [0, 1]")) };
+    let num = |s: &str| s.trim().parse::<f64>().map_err(|_| format!("{s:?} is not a number"));
+    let parts: Vec<&str> = text.split(':').collect();
+    if parts.len() == 3 {
+        let (start, end, step) = (num(parts[0])?, num(parts[1])?, num(parts[2])?);
+        if step <= 0.0 || end < start {
+            return Err(format!("{text:?}: want start:end:step with end >= start and step > 0"));
+        }
+        let count = ((end - start) / step + 1e-9).floor() as usize;
+        // Round to 1e-9 so 0:1:0.1 gives 0.3, not 0.30000000000000004.
+        return (0..=count).map(|i| check(((start + i as f64 * step) * 1e9).round() / 1e9)).collect();
+    }
+    text.split(',').map(|s| num(s).and_then(check)).collect()
+}
+
+/// A `--pick` rule: keep `metric >= factor × baseline`, maximise mean entropy.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct PickRule {
+    /// `ndcg`, `recall`, `ndcg_reachable`, `recall_reachable` or `relevance_retained`.
+    pub metric: &'static str,
+    /// Share of the relevance baseline that must be kept.
+    pub factor: f64,
+}
+
+/// Parses `ndcg>=0.95*baseline`.
+///
+/// # Errors
+/// A message saying what form is expected.
+pub fn parse_pick(text: &str) -> Result<PickRule, String> {
+    let expected = || {
+        format!(
+            "{text:?}: expected METRIC>=FACTOR*baseline with METRIC one of ndcg, recall, ndcg_reachable, recall_reachable, relevance_retained"
+        )
+    };
+    let (metric, rest) = text.split_once(">=").ok_or_else(expected)?;
+    let metric = match metric.trim() {
+        "ndcg" => "ndcg",
+        "recall" => "recall",
+        "ndcg_reachable" => "ndcg_reachable",
+        "recall_reachable" => "recall_reachable",
+        "relevance_retained" => "relevance_retained",
+        _ => return Err(expected()),
+    };
+    let factor = rest.trim().strip_suffix("*baseline").ok_or_else(expected)?;
+    let factor: f64 = factor.trim().parse().map_err(|_| expected())?;
+    Ok(PickRule { metric, factor })
+}
+
+impl Point {
+    /// The value of a named accuracy metric.
+    #[must_use]
+    pub fn metric(&self, name: &str) -> f64 {
+        match name {
+            "recall" => self.recall,
+            "ndcg_reachable" => self.ndcg_reachable,
+            "recall_reachable" => self.recall_reachable,
+            "relevance_retained" => self.relevance_retained,
+            _ => self.ndcg,
+        }
+    }
+}
+
+/// Per algorithm, the most diverse point (highest mean entropy) that keeps the rule; `None` for an
+/// algorithm with no such point.
+#[must_use]
+pub fn pick<'a>(
+    points: &'a [Point],
+    baseline: &Point,
+    rule: &PickRule,
+) -> Vec<(&'static str, Option<&'a Point>)> {
+    let floor = rule.factor * baseline.metric(rule.metric);
+    let mut names: Vec<&'static str> = Vec::new();
+    for p in points {
+        if !names.contains(&p.algorithm) {
+            names.push(p.algorithm);
+        }
+    }
+    names
+        .into_iter()
+        .map(|name| {
+            let best = points
+                .iter()
+                .filter(|p| p.algorithm == name && p.metric(rule.metric) >= floor)
+                .max_by(|a, b| a.entropy.total_cmp(&b.entropy).then(b.lambda.total_cmp(&a.lambda)));
+            (name, best)
+        })
+        .collect()
+}
+
+/// The CSV header of `frontier.csv`.
+pub const CSV_HEADER: &str = "algorithm,lambda,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
+
+/// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
+#[must_use]
+pub fn csv_row(label: &str, p: &Point) -> String {
+    format!(
+        "{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
+        label,
+        p.lambda,
+        p.recall,
+        p.ndcg,
+        p.recall_reachable,
+        p.ndcg_reachable,
+        p.relevance_retained,
+        p.entropy,
+        p.ild,
+        p.distinct,
+        p.coverage,
+        p.gini
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn lambda_grids_and_pick_rules_parse() {
+        assert_eq!(parse_lambdas("0:1:0.25").unwrap(), vec![0.0, 0.25, 0.5, 0.75, 1.0]);
+        assert_eq!(parse_lambdas("0:1:0.1").unwrap().len(), 11);
+        assert_eq!(parse_lambdas("0:1:0.1").unwrap()[3].to_bits(), 0.3_f64.to_bits());
+        assert_eq!(parse_lambdas("0, 0.3,1").unwrap(), vec![0.0, 0.3, 1.0]);
+        assert!(parse_lambdas("0,1.2").is_err());
+        assert!(parse_lambdas("1:0:0.1").is_err());
+        assert_eq!(parse_pick("ndcg>=0.95*baseline").unwrap(), PickRule { metric: "ndcg", factor: 0.95 });
+        assert!(parse_pick("ndcg>0.95").is_err());
+        assert_eq!(parse_pick("ndcg_reachable>=0.9*baseline").unwrap().metric, "ndcg_reachable");
+        assert_eq!(parse_pick("recall_reachable>=0.9*baseline").unwrap().metric, "recall_reachable");
+        assert!(parse_pick("mrr>=0.9*baseline").is_err());
+    }
+}

@@ -1,0 +1,158 @@
+//! `medley replay`: logged requests with their clicks, re-ranked by every (algorithm, lambda),
+//! scored for accuracy and diversity, so each slice's `lambda` is chosen on evidence.
+//!
+//! Each logged line is a re-rank request plus `"clicked": [ids]`. Lines are validated once into
+//! slates (the same validation as the server), then every cell of the grid re-ranks every slate
+//! on all cores. Per cell it reports:
+//! - accuracy: recall@k and nDCG@k (binary gains, log2 discount) in their textbook form, whose
+//!   ideal and denominator count every item the line logs as clicked, offered or not; the same
+//!   two restricted to the clicked items among the candidates (`recall_reachable`,
+//!   `ndcg_reachable`: what a re-ranker of this candidate set could at best reach); and
+//!   relevance retained (Σ normalised score of the slate ÷ Σ of the relevance top-k);
+//! - diversity: mean category entropy (bits), mean intra-list distance, mean distinct categories,
+//!   and over all slates the item coverage and the Gini coefficient of item exposure.
+//!
+//! Output: a table, `frontier.csv` and, through [`crate::offline::replay::plot`], `frontier.svg`.
+
+mod evaluate;
+mod frontier;
+pub mod plot;
+mod read;
+
+pub use evaluate::evaluate;
+pub use frontier::{csv_row, parse_lambdas, parse_pick, pick, PickRule, Point, CSV_HEADER};
+pub use read::{read_corpus, Corpus, Slate};
+
+use medley_core::diversify::{self, Diversifier};
+
+/// What `medley replay` was asked to do.
+#[derive(Debug, Clone)]
+pub struct Options {
+    /// Algorithm names.
+    pub algorithms: Vec<&'static dyn Diversifier>,
+    /// Lambda grid.
+    pub lambdas: Vec<f64>,
+    /// Slate length.
+    pub k: usize,
+    /// Output directory for frontier.csv and frontier.svg.
+    pub out: std::path::PathBuf,
+    /// Optional `--pick` rule.
+    pub pick: Option<PickRule>,
+}
+
+/// Runs the grid on `corpus`, writes `frontier.csv` and `frontier.svg` into `opts.out`, and
+/// returns the report text (table, and the pick with its config snippet).
+///
+/// # Errors
+/// I/O errors writing the outputs, or a kernel refusing a slate.
+pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
+    use anyhow::Context as _;
+    use std::fmt::Write as _;
+    let relevance = diversify::by_name("relevance").context("relevance is registered")?;
+    let baseline = evaluate(corpus, relevance, 0.0, opts.k).map_err(anyhow::Error::msg)?;
+    let cells: Vec<(&'static dyn Diversifier, f64)> =
+        opts.algorithms.iter().flat_map(|&a| opts.lambdas.iter().map(move |&l| (a, l))).collect();
+    let bar = indicatif::ProgressBar::new(cells.len() as u64);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} cells, {elapsed} elapsed, {eta} left")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    let mut points = Vec::with_capacity(cells.len());
+    for (algorithm, lambda) in cells {
+        points.push(evaluate(corpus, algorithm, lambda, opts.k).map_err(anyhow::Error::msg)?);
+        bar.inc(1);
+    }
+    bar.finish_and_clear();
+
+    std::fs::create_dir_all(&opts.out).with_context(|| format!("creating {}", opts.out.display()))?;
+    let mut csv = String::from(CSV_HEADER);
+    csv.push('\n');
+    // The baseline row first, labelled as such, then every cell.
+    let rows: Vec<(&str, &Point)> =
+        std::iter::once(("baseline", &baseline)).chain(points.iter().map(|p| (p.algorithm, p))).collect();
+    for &(label, p) in &rows {
+        csv.push_str(&csv_row(label, p));
+        csv.push('\n');
+    }
+    let csv_path = opts.out.join("frontier.csv");
+    std::fs::write(&csv_path, csv).with_context(|| format!("writing {}", csv_path.display()))?;
+    let svg = crate::offline::replay::plot::render(&points, &baseline, opts.k).map_err(anyhow::Error::msg)?;
+    let svg_path = opts.out.join("frontier.svg");
+    std::fs::write(&svg_path, svg).with_context(|| format!("writing {}", svg_path.display()))?;
+
+    let mut report = String::new();
+    let k = opts.k;
+    let _ = writeln!(report, "{} slates, {} items offered, k = {k}", corpus.len(), corpus.items);
+    let _ = writeln!(
+        report,
+        "{:<10} {:>6} {:>9} {:>8} {:>16} {:>14} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
+        "algorithm",
+        "lambda",
+        "recall@k",
+        "nDCG@k",
+        "recall_reachable",
+        "ndcg_reachable",
+        "retained",
+        "entropy",
+        "ILD",
+        "distinct",
+        "coverage",
+        "gini"
+    );
+    for &(label, p) in &rows {
+        let _ = writeln!(
+            report,
+            "{:<10} {:>6.2} {:>9.4} {:>8.4} {:>16.4} {:>14.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
+            label,
+            p.lambda,
+            p.recall,
+            p.ndcg,
+            p.recall_reachable,
+            p.ndcg_reachable,
+            p.relevance_retained,
+            p.entropy,
+            p.ild,
+            p.distinct,
+            p.coverage,
+            p.gini
+        );
+    }
+    let _ = writeln!(report, "wrote {} and {}", csv_path.display(), svg_path.display());
+    if let Some(rule) = &opts.pick {
+        let floor = rule.factor * baseline.metric(rule.metric);
+        let _ = writeln!(
+            report,
+            "\npick: {} >= {} x baseline ({:.4}); the most diverse lambda per algorithm:",
+            rule.metric, rule.factor, floor
+        );
+        // Relevance ignores lambda; picking for it says nothing.
+        let candidates: Vec<Point> = points.iter().filter(|p| p.algorithm != "relevance").cloned().collect();
+        let picks = pick(&candidates, &baseline, rule);
+        for (name, best) in &picks {
+            match best {
+                Some(p) => {
+                    let _ = writeln!(
+                        report,
+                        "  {name:<10} lambda = {:<5} {} {:.4}, entropy {:.3} bits",
+                        p.lambda,
+                        rule.metric,
+                        p.metric(rule.metric),
+                        p.entropy
+                    );
+                }
+                None => {
+                    let _ = writeln!(report, "  {name:<10} no lambda keeps the bound");
+                }
+            }
+        }
+        let overall = picks.iter().filter_map(|(_, p)| *p).max_by(|a, b| a.entropy.total_cmp(&b.entropy));
+        if let Some(p) = overall {
+            let _ = writeln!(
+                report,
+                "\n# a slice serving the most diverse of these (edit the name):\n[slices.SLICE]\nalgorithm = \"{}\"\nlambda = {}\nk = {k}",
+                p.algorithm, p.lambda
+            );
+        }
+    }
+    Ok(report)
+}

@@ -1,0 +1,57 @@
+//! The plain-text summary `medley check-config` prints.
+
+use super::validated::Config;
+
+/// A plain-text summary of what `config` serves, for `medley check-config`.
+#[must_use]
+pub fn describe(config: &Config) -> String {
+    use std::fmt::Write as _;
+    let s = &config.server;
+    let mut out = String::new();
+    let _ = writeln!(out, "config ok");
+    let _ = writeln!(out, "listen {} (public), {} (private)", s.listen, s.admin_listen);
+    let _ = writeln!(
+        out,
+        "limits: body {} bytes ({} in flight), {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \
+         header/idle timeout {} ms, body timeout {} ms, {} connections",
+        s.max_body_bytes,
+        s.max_inflight_body_bytes,
+        s.limits.max_candidates,
+        s.limits.max_dim,
+        s.limits.max_k,
+        s.request_timeout.as_millis(),
+        s.max_in_flight,
+        s.pool_threads,
+        s.header_timeout.as_millis(),
+        s.body_timeout.as_millis(),
+        s.max_connections
+    );
+    for slice in config.slices.values() {
+        let _ = writeln!(out, "slice {}: locked={}", slice.name, slice.locked);
+        for arm in &slice.arms {
+            let st = &arm.settings;
+            let cap = st.max_per_category.map_or_else(|| "none".to_owned(), |c| c.to_string());
+            let share = 100.0 * arm.weight as f64 / slice.total_weight as f64;
+            let _ = writeln!(
+                out,
+                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}",
+                arm.name,
+                st.algorithm.name(),
+                st.lambda,
+                st.k,
+                st.score_transform.name(),
+                cap,
+            );
+        }
+        if let Some(sh) = &slice.shadow {
+            let _ = writeln!(
+                out,
+                "  shadow: algorithm={} lambda={} sample_rate={}",
+                sh.algorithm.name(),
+                sh.lambda,
+                sh.sample_rate
+            );
+        }
+    }
+    out
+}

@@ -1,0 +1,114 @@
+//! The TOML a deployment writes, as serde reads it: every key optional except the slices, and
+//! unknown keys refused (a typo must not silently fall back to a default). Nothing here checks
+//! values; `validated` does.
+
+use std::collections::BTreeMap;
+
+use serde::Deserialize;
+
+/// The file as written: every key optional except the slices themselves.
+#[derive(Debug, Clone, Default, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawConfig {
+    /// Listeners and limits.
+    #[serde(default)]
+    pub server: RawServer,
+    /// Traffic slices by name.
+    #[serde(default)]
+    pub slices: BTreeMap<String, RawSlice>,
+}
+
+/// The `[server]` table.
+#[derive(Debug, Clone, Default, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawServer {
+    /// Public listener (`"127.0.0.1:8080"`).
+    pub listen: Option<String>,
+    /// Private listener for metrics and health (`"127.0.0.1:8081"`).
+    pub admin_listen: Option<String>,
+    /// Largest accepted request body, and the longest line on the stream endpoint.
+    pub max_body_bytes: Option<u64>,
+    /// Request body bytes held at once across all requests (reserved at the declared
+    /// Content-Length, or as a chunked body or stream line arrives); beyond it, 503 at once.
+    pub max_inflight_body_bytes: Option<u64>,
+    /// Most candidates in one request.
+    pub max_candidates: Option<u64>,
+    /// Largest embedding dimension.
+    pub max_dim: Option<u64>,
+    /// Largest k.
+    pub max_k: Option<u64>,
+    /// Deadline for one request (or one stream line), in milliseconds.
+    pub request_timeout_ms: Option<u64>,
+    /// Requests processed at once; beyond it the service answers 503 at once.
+    pub max_in_flight: Option<u64>,
+    /// Threads of the kernel pool; 0 means one per core.
+    pub pool_threads: Option<u64>,
+    /// Lines of one stream processed at once.
+    pub stream_in_flight: Option<u64>,
+    /// Slates whose estimated work is below this run inline on the async worker.
+    pub inline_work_below: Option<u64>,
+    /// Shadow jobs waiting for the shadow worker; beyond it new ones are dropped and counted.
+    pub shadow_queue: Option<u64>,
+    /// Time a connection has to send a request's headers, counted from when it opens or from
+    /// the end of the previous response: the slow-header limit and the keep-alive idle limit.
+    pub header_timeout_ms: Option<u64>,
+    /// Time a request has to send its whole body once its headers are in (on the stream
+    /// endpoint: the longest gap between body chunks).
+    pub body_timeout_ms: Option<u64>,
+    /// Open connections per listener; beyond it new connections wait in the accept backlog.
+    pub max_connections: Option<u64>,
+}
+
+/// One `[slices.NAME]` table.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSlice {
+    /// Diversifier name (`relevance`, `mmr`, `dpp`, `quota`).
+    pub algorithm: Option<String>,
+    /// Diversity weight in `[0, 1]`.
+    pub lambda: Option<f64>,
+    /// Slate length.
+    pub k: Option<u64>,
+    /// `minmax` or `none`.
+    pub score_transform: Option<String>,
+    /// Hard cap on items per category in one slate.
+    pub max_per_category: Option<u64>,
+    /// When true, requests may not override `algorithm`, `lambda` or `k`.
+    pub locked: Option<bool>,
+    /// Weighted A/B arms; each overrides the slice's settings it names.
+    pub arms: Option<Vec<RawArm>>,
+    /// A diversifier run beside production on a sample of requests, never affecting answers.
+    pub shadow: Option<RawShadow>,
+}
+
+/// One `[[slices.NAME.arms]]` entry.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawArm {
+    /// Arm name, reported in responses and metric labels.
+    pub name: String,
+    /// Relative share of units assigned to this arm.
+    pub weight: u64,
+    /// Overrides the slice's algorithm.
+    pub algorithm: Option<String>,
+    /// Overrides the slice's lambda.
+    pub lambda: Option<f64>,
+    /// Overrides the slice's k.
+    pub k: Option<u64>,
+    /// Overrides the slice's score transform.
+    pub score_transform: Option<String>,
+    /// Overrides the slice's per-category cap.
+    pub max_per_category: Option<u64>,
+}
+
+/// The `[slices.NAME.shadow]` table.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawShadow {
+    /// The shadow diversifier.
+    pub algorithm: String,
+    /// Its lambda (default 0.5).
+    pub lambda: Option<f64>,
+    /// Share of the slice's requests shadowed, in `[0, 1]` (default 1).
+    pub sample_rate: Option<f64>,
+}
