@@ -5,12 +5,14 @@
 mod common;
 
 use common::{candidates, slate, Rng};
-use medley::diversify::{self, reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance, EPSILON};
+use medley::diversify::{
+    self, reference, Calibrated, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance, Ssd, EPSILON,
+};
 use medley::{measures, CandidateInput, Limits, Params, RerankInput, Workspace};
 use nalgebra::DMatrix;
 use proptest::prelude::*;
 
-const ALL: [&dyn Diversifier; 4] = [&Relevance, &Mmr, &Dpp, &Quota];
+const ALL: [&dyn Diversifier; 6] = [&Relevance, &Mmr, &Dpp, &Quota, &Ssd, &Calibrated];
 
 /// Both exact DPP strategies: every DPP reference check runs on each.
 const STRATEGIES: [DppStrategy; 2] = [DppStrategy::Lazy, DppStrategy::Screened];
@@ -126,6 +128,32 @@ proptest! {
                 }
             }
         }
+    }
+
+    /// Issue 17: windowed DPP and SSD (with and without a window) pick exactly what the brute
+    /// force that rebuilds the window's basis at every step picks; calibration what evaluating
+    /// every candidate slate's divergence picks. Slates include duplicate rows, d below the
+    /// window, and k above N.
+    #[test]
+    fn windowed_dpp_ssd_and_calibrated_equal_their_brute_force((cands, k, lambda) in arb_slate(), window in 2usize..8, dup in any::<bool>()) {
+        let mut cands = cands;
+        if dup && cands.len() > 3 {
+            // Two exact duplicates and a near one.
+            cands[1].embedding = cands[0].embedding.clone();
+            let mut near = cands[2].embedding.clone().unwrap();
+            near[0] += 1e-4;
+            cands[3].embedding = Some(near);
+        }
+        let input = slate(cands);
+        let p = params(k, lambda);
+        let w = p.with_window(Some(window as u64)).unwrap();
+        prop_assert_eq!(run(&Dpp, &input, &w), reference::dpp_window(&input, &w, window), "dpp window {}", window);
+        prop_assert_eq!(run(&Ssd, &input, &w), reference::ssd(&input, &w), "ssd window {}", window);
+        prop_assert_eq!(run(&Ssd, &input, &p), reference::ssd(&input, &p), "ssd unbounded");
+        prop_assert_eq!(run(&Calibrated, &input, &p), reference::calibrated(&input, &p), "calibrated");
+        // A window no shorter than the slate never slides: today's DPP exactly.
+        let wide = p.with_window(Some(k.max(2) as u64)).unwrap();
+        prop_assert_eq!(run(&Dpp, &input, &wide), run(&Dpp, &input, &p));
     }
 
     #[test]
@@ -403,7 +431,7 @@ fn dpp_strategies_agree_on_near_duplicate_slates() {
 #[test]
 fn registry_finds_every_algorithm_by_name() {
     let names: Vec<&str> = diversify::names().collect();
-    assert_eq!(names, ["relevance", "mmr", "dpp", "quota"]);
+    assert_eq!(names, ["relevance", "mmr", "dpp", "quota", "ssd", "calibrated"]);
     for name in names {
         assert_eq!(diversify::by_name(name).unwrap().name(), name);
     }
@@ -432,4 +460,58 @@ fn raising_lambda_raises_category_entropy_on_clustered_data() {
         let h = |l: f64| measures::category_entropy_bits(&input, &run(algo, &input, &params(10, l)));
         assert!(h(0.0) < h(0.5) + 1e-12 && h(0.5) <= h(1.0) + 1e-12 && h(0.0) < h(1.0), "{}", algo.name());
     }
+}
+
+/// Issue 17 at production-like sizes: windows that slide dozens of times over slates of a few
+/// hundred candidates (the rotations, not just the first fill), clustered rows so windows span
+/// near-dependent picks, and d below the window so the rebuild path runs; each pick equals the
+/// brute force's.
+#[test]
+fn windowed_kernels_equal_brute_force_on_larger_slates() {
+    for seed in 0..12_u64 {
+        let mut rng = Rng(1000 + seed);
+        let (n, d) = (150 + 25 * seed as usize, [3, 8, 24, 48][seed as usize % 4]);
+        let centres: Vec<Vec<f64>> = (0..6).map(|_| (0..d).map(|_| rng.normal()).collect()).collect();
+        let cands: Vec<CandidateInput> = (0..n)
+            .map(|i| {
+                let c = &centres[rng.below(centres.len())];
+                CandidateInput {
+                    id: format!("gear-{i}"),
+                    score: rng.unit(),
+                    category: Some(format!("cat-{}", rng.below(4))),
+                    embedding: Some(c.iter().map(|&x| (x + 0.3 * rng.normal()) as f32).collect()),
+                }
+            })
+            .collect();
+        let input = slate(cands);
+        for (k, window, lambda) in [(40, 5, 0.5), (30, 10, 0.8), (25, 2, 0.3)] {
+            let p = params(k, lambda).with_window(Some(window)).unwrap();
+            assert_eq!(
+                run(&Dpp, &input, &p),
+                reference::dpp_window(&input, &p, window as usize),
+                "seed {seed} dpp w={window}"
+            );
+            assert_eq!(run(&Ssd, &input, &p), reference::ssd(&input, &p), "seed {seed} ssd w={window}");
+        }
+        let p = params(30, 0.6);
+        assert_eq!(run(&Calibrated, &input, &p), reference::calibrated(&input, &p), "seed {seed} calibrated");
+    }
+}
+
+/// Windowed DPP differs from unbounded DPP only once the window slides, and at every step its
+/// pick has the largest objective against the last `w − 1` picks (checked against the
+/// brute-force residuals, not the kernel's own).
+#[test]
+fn a_window_of_two_only_avoids_the_previous_pick() {
+    let input = slate(candidates(&mut Rng(77), 60, 6, 3));
+    let p = params(12, 0.9).with_window(Some(2)).unwrap();
+    let picks = run(&Dpp, &input, &p);
+    assert_valid(&picks, 60, 12, "dpp window 2");
+    for t in 1..picks.len() {
+        let d2 = reference::window_residuals(&input, &picks[t - 1..t]);
+        let obj = |i: usize| 0.1 * input.normalized()[i] + 0.9 * d2[i].ln();
+        let best = (0..60).filter(|i| !picks[..t].contains(i)).map(obj).fold(f64::NEG_INFINITY, f64::max);
+        assert!((obj(picks[t]) - best).abs() < 1e-12, "step {t}");
+    }
+    assert_ne!(picks, run(&Dpp, &input, &params(12, 0.9)), "the window changes the slate");
 }

@@ -635,3 +635,203 @@ async fn readme_example_slate() {
     assert_eq!(lines[1]["line"], 2);
     server.stop().await;
 }
+
+/// Issue 17 over HTTP and the stream: windowed DPP, SSD and calibration serve the slates the
+/// kernels compute (checked here against the in-crate brute force on the same validated input),
+/// `diversity.miscalibration` comes with every profile and equals Steck's divergence of the
+/// answered slate, slice defaults apply, a locked slice refuses the new fields, and every new
+/// refusal has its code and path.
+#[tokio::test]
+async fn windowed_dpp_ssd_and_calibration_serve_over_http_and_the_stream() {
+    const CONFIG: &str = r#"
+[slices.default]
+algorithm = "dpp"
+lambda = 0.3
+k = 10
+
+[slices.feed]
+algorithm = "ssd"
+lambda = 0.6
+k = 8
+window = 3
+
+[slices.taste]
+algorithm = "calibrated"
+lambda = 0.7
+k = 6
+locked = true
+profile = { "cat-0" = 5.0, "cat-1" = 3.0, "cat-2" = 2.0 }
+"#;
+    let server = Server::start(CONFIG).await;
+    let client = reqwest::Client::new();
+    let response_schema = schema("RerankResponse");
+    let mut rng = Rng(17);
+    let base = request(&mut rng, 50, 6, 3);
+    // The validated input the server sees, for the brute force.
+    let cands: Vec<medley::CandidateInput> = base["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| medley::CandidateInput {
+            id: c["id"].as_str().unwrap().into(),
+            score: c["score"].as_f64().unwrap(),
+            category: c["category"].as_str().map(String::from),
+            embedding: Some(
+                c["embedding"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap() as f32).collect(),
+            ),
+        })
+        .collect();
+    let profile = vec![("cat-0".to_owned(), 1.0), ("cat-1".to_owned(), 1.0), ("cat-7".to_owned(), 2.0)];
+    let input =
+        medley::RerankInput::new(cands, medley::ScoreTransform::MinMax, true, &medley::Limits::default())
+            .unwrap()
+            .with_profile(profile.clone())
+            .unwrap();
+    let ids = |r: &Value| -> Vec<String> {
+        r["items"].as_array().unwrap().iter().map(|i| i["id"].as_str().unwrap().to_owned()).collect()
+    };
+    let names =
+        |picks: Vec<usize>| -> Vec<String> { picks.into_iter().map(|i| input.ids()[i].clone()).collect() };
+    let params = |k: u64, lambda: f64, window: Option<u64>| {
+        medley::Params::new(k, lambda, &medley::Limits::default()).unwrap().with_window(window).unwrap()
+    };
+    let profile_json = json!({"cat-0": 1.0, "cat-1": 1.0, "cat-7": 2.0});
+
+    let mut body = base.clone();
+    body["algorithm"] = json!("dpp");
+    body["lambda"] = json!(0.8);
+    body["k"] = json!(12);
+    body["window"] = json!(4);
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!(status, 200, "{r}");
+    assert_valid(&response_schema, &r);
+    assert_eq!(
+        ids(&r),
+        names(medley::diversify::reference::dpp_window(&input, &params(12, 0.8, Some(4)), 4))
+    );
+    assert!(r["diversity"].get("miscalibration").is_none(), "no profile, no miscalibration");
+
+    body["algorithm"] = json!("ssd");
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!(status, 200, "{r}");
+    assert_eq!(ids(&r), names(medley::diversify::reference::ssd(&input, &params(12, 0.8, Some(4)))));
+
+    body["algorithm"] = json!("calibrated");
+    body.as_object_mut().unwrap().remove("window");
+    body["profile"] = profile_json.clone();
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!(status, 200, "{r}");
+    assert_valid(&response_schema, &r);
+    let picks = medley::diversify::reference::calibrated(&input, &params(12, 0.8, None));
+    assert_eq!(ids(&r), names(picks.clone()));
+    let kl = medley::measures::miscalibration(&input, &picks).unwrap();
+    assert!((r["diversity"]["miscalibration"].as_f64().unwrap() - kl).abs() < 1e-12, "{r}");
+
+    // Slice defaults: the feed slice's window, the taste slice's profile.
+    let (status, r) = post_json(
+        &client,
+        &server.url("/v1/rerank"),
+        &json!({"slice": "feed", "candidates": base["candidates"]}),
+    )
+    .await;
+    assert_eq!((status, r["algorithm"].as_str()), (200, Some("ssd")), "{r}");
+    assert_eq!(ids(&r), names(medley::diversify::reference::ssd(&input, &params(8, 0.6, Some(3)))));
+    let (status, r) = post_json(
+        &client,
+        &server.url("/v1/rerank"),
+        &json!({"slice": "taste", "candidates": base["candidates"]}),
+    )
+    .await;
+    assert_eq!((status, r["algorithm"].as_str()), (200, Some("calibrated")), "{r}");
+    assert!(r["diversity"]["miscalibration"].as_f64().is_some());
+
+    // Refusals.
+    let with = |f: &dyn Fn(&mut Value)| {
+        let mut b = base.clone();
+        f(&mut b);
+        b
+    };
+    for (what, body, code, path) in [
+        ("window 1", with(&|b| b["window"] = json!(1)), "window_out_of_range", "window"),
+        ("window 1001", with(&|b| b["window"] = json!(1001)), "window_out_of_range", "window"),
+        (
+            "calibrated without a profile",
+            with(&|b| b["algorithm"] = json!("calibrated")),
+            "missing_profile",
+            "profile",
+        ),
+        (
+            "a negative weight",
+            with(&|b| b["profile"] = json!({"cat-0": 1.0, "cat-1": -0.5})),
+            "invalid_profile",
+            "profile.cat-1",
+        ),
+        (
+            "weights summing to 0",
+            with(&|b| b["profile"] = json!({"cat-0": 0.0})),
+            "invalid_profile",
+            "profile",
+        ),
+        (
+            "a weight that is not a number",
+            with(&|b| b["profile"] = json!({"cat-0": "high"})),
+            "invalid_field",
+            "profile.cat-0",
+        ),
+        (
+            "a window on a locked slice",
+            with(&|b| {
+                b["slice"] = json!("taste");
+                b["window"] = json!(3);
+            }),
+            "slice_locked",
+            "window",
+        ),
+        (
+            "a profile on a locked slice",
+            with(&|b| {
+                b["slice"] = json!("taste");
+                b["profile"] = json!({"cat-0": 1.0});
+            }),
+            "slice_locked",
+            "profile",
+        ),
+    ] {
+        let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+        assert!(status == 422 || status == 400, "{what}: {status} {r}");
+        assert_valid(&schema("ErrorBody"), &r);
+        assert_eq!(
+            (r["error"]["code"].as_str(), r["error"]["path"].as_str()),
+            (Some(code), Some(path)),
+            "{what}: {r}"
+        );
+    }
+
+    // The stream: each new algorithm on a line, a bad line between them.
+    let mut lines = Vec::new();
+    for (algorithm, extra) in [
+        ("ssd", json!({"window": 2})),
+        ("calibrated", json!({"profile": profile_json})),
+        ("dpp", json!({"window": 1})),
+    ] {
+        let mut l = base.clone();
+        l["algorithm"] = json!(algorithm);
+        l["k"] = json!(5);
+        for (key, value) in extra.as_object().unwrap() {
+            l[key] = value.clone();
+        }
+        lines.push(l.to_string());
+    }
+    let (status, _, text) =
+        post_raw(&client, &server.url("/v1/rerank/stream"), "application/x-ndjson", lines.join("\n") + "\n")
+            .await;
+    assert_eq!(status, 200);
+    let out: Vec<Value> = text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(out[0]["algorithm"], "ssd");
+    assert!(out[1]["diversity"]["miscalibration"].as_f64().is_some());
+    assert_eq!(
+        (out[2]["error"]["code"].as_str(), out[2]["line"].as_u64()),
+        (Some("window_out_of_range"), Some(3))
+    );
+    server.stop().await;
+}

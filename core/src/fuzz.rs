@@ -64,9 +64,20 @@ pub fn diversifiers(bytes: &[u8]) {
         .collect();
     let limits = Limits::default();
     let Ok(params) = Params::new(k, lambda, &limits) else { return };
+    // A window for windowed DPP and SSD on half the inputs (2..=9, often below k and d).
+    let window = (flags & 8 != 0).then(|| 2 + u64::from(flags >> 5));
+    let Ok(params) = params.with_window(window) else { return };
     let params = params.with_max_per_category(cap);
+    // A taste profile over some of the categories (one never present) on half the inputs.
+    let profile: Option<Vec<(String, f64)>> = (b.u8() % 2 == 0)
+        .then(|| ["c0", "c1", "c3", "c9"].iter().map(|c| ((*c).to_owned(), f64::from(b.u8() % 4))).collect());
     let cap = params.max_per_category(); // a cap of 0 means none
     let Ok(input) = RerankInput::new(candidates, transform, false, &limits) else { return };
+    let input = match profile {
+        None => input,
+        // Weights that sum to 0 are refused; that input is then served without a profile.
+        Some(weights) => input.clone().with_profile(weights).unwrap_or(input),
+    };
     let relevance_at_zero = {
         let zero = Params::new(k, 0.0, &limits).expect("k was accepted").with_max_per_category(cap);
         diversify::Relevance
@@ -78,10 +89,9 @@ pub fn diversifiers(bytes: &[u8]) {
     for name in diversify::names() {
         let algo = diversify::by_name(name).expect("a registered name");
         let Ok(first) = algo.select(&input, &params, &mut ws) else {
-            assert!(
-                algo.needs_embeddings() && input.embeddings().is_none(),
-                "{name} failed on a valid slate"
-            );
+            let no_embeddings = algo.needs_embeddings() && input.embeddings().is_none();
+            let no_profile = name == "calibrated" && input.profile().is_none();
+            assert!(no_embeddings || no_profile, "{name} failed on a valid slate");
             continue;
         };
         check_selection(&input, &first.indices, params.k(), cap, name);

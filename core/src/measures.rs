@@ -204,6 +204,39 @@ pub fn compare(input: &RerankInput, primary: &[usize], shadow: &[usize]) -> Comp
     }
 }
 
+/// Share of the profile mixed into a slate's category distribution before the divergence is
+/// taken, so it stays finite: `q̃ = (1 − α)·q + α·p` with Steck's `α = 0.01`.
+pub const CALIBRATION_ALPHA: f64 = 0.01;
+
+/// Miscalibration of a slate: `KL(p ‖ q̃)` in nats, `p` the input's profile, `q(g)` the share of
+/// group `g` in the slate (candidates without a category form one group), `q̃ = 0.99·q + 0.01·p`,
+/// terms with `p_g = 0` counting 0. `None` without a profile; an empty slate has `q = 0`.
+///
+/// # Reference
+/// H. Steck, "Calibrated Recommendations", RecSys 2018, Eq. (2) with α = 0.01.
+///
+/// # Complexity
+/// O(k + G + P).
+#[must_use]
+pub fn miscalibration(input: &RerankInput, slate: &[usize]) -> Option<f64> {
+    let profile = input.profile()?;
+    let mut counts = vec![0_usize; input.group_count()];
+    for &i in slate {
+        counts[input.groups()[i] as usize] += 1;
+    }
+    let total = slate.len().max(1) as f64;
+    let term = |p: f64, q: f64| {
+        if p > 0.0 {
+            p * (p / ((1.0 - CALIBRATION_ALPHA) * q + CALIBRATION_ALPHA * p)).ln()
+        } else {
+            0.0
+        }
+    };
+    let present: f64 = profile.by_group().iter().zip(&counts).map(|(&p, &c)| term(p, c as f64 / total)).sum();
+    let absent: f64 = profile.absent().iter().map(|&p| term(p, 0.0)).sum();
+    Some(present + absent)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -307,5 +340,40 @@ mod tests {
         let (a, b) = ([5, 1, 9, 2, 7], [1, 5, 2, 8, 9]);
         assert!(close(rbo_ext(&a, &b, 0.9), rbo_ext(&b, &a, 0.9)));
         assert!((0.0..=1.0).contains(&rbo_ext(&a, &b, 0.9)));
+    }
+
+    /// Steck 2018's definition with α = 0.01, profile drama 0.7 / comedy 0.3; the worked
+    /// values (1.134, 0.0, 0.0275), recomputed in CPython: all drama gives q̃ = (0.997, 0.003), so
+    /// 0.7·ln(0.7/0.997) + 0.3·ln(0.3/0.003) = 1.133981751353524; 8 drama and 2 comedy give q̃ = (0.799,
+    /// 0.201), so 0.7·ln(0.7/0.799) + 0.3·ln(0.3/0.201) = 0.027546842473128455.
+    #[test]
+    fn miscalibration_worked_values() {
+        // Candidates 0..10 are drama, 10..13 comedy.
+        let cands = (0..13)
+            .map(|i| crate::CandidateInput {
+                id: format!("m{i}"),
+                score: 1.0,
+                category: Some(if i < 10 { "drama" } else { "comedy" }.into()),
+                embedding: None,
+            })
+            .collect();
+        let input = RerankInput::new(cands, crate::ScoreTransform::MinMax, false, &crate::Limits::default())
+            .unwrap()
+            .with_profile(vec![("drama".into(), 7.0), ("comedy".into(), 3.0)])
+            .unwrap();
+        let kl = |slate: &[usize]| miscalibration(&input, slate).unwrap();
+        assert!(
+            (kl(&[0, 1, 2, 3, 4]) - 1.133_981_751_353_524).abs() < 1e-12,
+            "all drama: {}",
+            kl(&[0, 1, 2, 3, 4])
+        );
+        assert!(kl(&[0, 1, 2, 3, 4, 5, 6, 10, 11, 12]).abs() < 1e-12, "7/3 is the profile");
+        assert!((kl(&[0, 1, 2, 3, 4, 5, 6, 7, 10, 11]) - 0.027_546_842_473_128_455).abs() < 1e-12, "8/2");
+        assert!((kl(&[]) - 100f64.ln()).abs() < 1e-12, "an empty slate: q = 0, KL = ln 100");
+        // A profile category no candidate has adds p·ln(1/α) whatever the slate.
+        let with_absent =
+            input.clone().with_profile(vec![("drama".into(), 0.7), ("western".into(), 0.3)]).unwrap();
+        let want = 0.7 * (0.7_f64 / 0.997).ln() + 0.3 * 100f64.ln();
+        assert!((miscalibration(&with_absent, &[0, 1]).unwrap() - want).abs() < 1e-12);
     }
 }

@@ -190,6 +190,53 @@ pub enum ValidationError {
         /// lambda sent.
         got: f64,
     },
+    /// `window` outside `2..=1000`.
+    #[error("window = {got} is outside 2..={max}")]
+    WindowOutOfRange {
+        /// window sent.
+        got: u64,
+        /// The limit.
+        max: usize,
+    },
+    /// A profile weight that is negative or not finite, or weights that sum to 0.
+    #[error("profile {}: {reason}", category.as_deref().map_or_else(|| "weights".to_owned(), |c| format!("weight of {c:?}")))]
+    InvalidProfile {
+        /// The category whose weight is bad; `None` when the weights as a whole are.
+        category: Option<String>,
+        /// What is wrong.
+        reason: &'static str,
+    },
+}
+
+/// Largest `window` accepted ([`Params::with_window`]).
+pub const MAX_WINDOW: usize = 1000;
+
+/// Most categories in one profile ([`RerankInput::with_profile`]).
+pub const MAX_PROFILE_CATEGORIES: usize = 10_000;
+
+/// A user's taste profile over categories, normalised to sum 1 and laid over one slate's groups:
+/// the target distribution `p` that calibration (Steck 2018) measures a slate against.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Profile {
+    /// `p` of each group of the slate, by group id; 0 for groups the profile does not name (and
+    /// for the group of candidates without a category).
+    by_group: Vec<f64>,
+    /// `p` of profile categories that no candidate has.
+    absent: Vec<f64>,
+}
+
+impl Profile {
+    /// `p` of each group of the slate, by group id.
+    #[must_use]
+    pub fn by_group(&self) -> &[f64] {
+        &self.by_group
+    }
+
+    /// `p` of the profile's categories that no candidate has (a slate can never cover them).
+    #[must_use]
+    pub fn absent(&self) -> &[f64] {
+        &self.absent
+    }
 }
 
 /// Row-major matrix of L2-normalised embeddings, one row per candidate.
@@ -264,6 +311,7 @@ pub struct RerankInput {
     groups: Vec<u32>,
     group_names: Vec<Option<String>>,
     embeddings: Option<Embeddings>,
+    profile: Option<Profile>,
 }
 
 impl RerankInput {
@@ -392,7 +440,16 @@ impl RerankInput {
                 .collect();
             Embeddings { dim, data, inv_norm }
         });
-        Ok(Self { ids, scores, sent_negative_zero, normalized, groups, group_names, embeddings })
+        Ok(Self {
+            ids,
+            scores,
+            sent_negative_zero,
+            normalized,
+            groups,
+            group_names,
+            embeddings,
+            profile: None,
+        })
     }
 
     /// Number of candidates N.
@@ -466,6 +523,57 @@ impl RerankInput {
     pub fn embeddings(&self) -> Option<&Embeddings> {
         self.embeddings.as_ref()
     }
+
+    /// Attaches a taste profile: `(category, weight)` pairs, weights finite and non-negative with
+    /// a positive sum, normalised to sum 1 (a repeated category's weights add up).
+    ///
+    /// # Errors
+    /// [`ValidationError::InvalidProfile`] naming the first bad weight, or the whole profile when
+    /// it is empty, sums to 0, or names more than [`MAX_PROFILE_CATEGORIES`] categories.
+    ///
+    /// # Complexity
+    /// O(P + G) with P profile entries and G groups in the slate.
+    pub fn with_profile(mut self, weights: Vec<(String, f64)>) -> Result<Self, ValidationError> {
+        let whole = |reason| ValidationError::InvalidProfile { category: None, reason };
+        if weights.len() > MAX_PROFILE_CATEGORIES {
+            return Err(whole("more than 10 000 categories"));
+        }
+        let mut total = 0.0;
+        for (category, w) in &weights {
+            if !w.is_finite() || *w < 0.0 {
+                return Err(ValidationError::InvalidProfile {
+                    category: Some(category.clone()),
+                    reason: "is not a finite number >= 0",
+                });
+            }
+            total += w;
+        }
+        if !(total > 0.0 && total.is_finite()) {
+            return Err(whole("must have a positive, finite sum"));
+        }
+        let group_of: HashMap<&str, usize> =
+            self.group_names.iter().enumerate().filter_map(|(g, name)| Some((name.as_deref()?, g))).collect();
+        let mut by_group = vec![0.0; self.group_names.len()];
+        let mut absent: HashMap<String, f64> = HashMap::new();
+        for (category, w) in weights {
+            let p = w / total;
+            match group_of.get(category.as_str()) {
+                Some(&g) => by_group[g] += p,
+                None => *absent.entry(category).or_insert(0.0) += p,
+            }
+        }
+        // Sorted, so sums over them do not depend on hashing order.
+        let mut absent: Vec<(String, f64)> = absent.into_iter().collect();
+        absent.sort_by(|a, b| a.0.cmp(&b.0));
+        self.profile = Some(Profile { by_group, absent: absent.into_iter().map(|(_, p)| p).collect() });
+        Ok(self)
+    }
+
+    /// The taste profile, when one was attached.
+    #[must_use]
+    pub fn profile(&self) -> Option<&Profile> {
+        self.profile.as_ref()
+    }
 }
 
 /// L2-normalises `e` in f64 and appends it to `data` as f32.
@@ -525,6 +633,7 @@ pub struct Params {
     k: usize,
     lambda: f64,
     max_per_category: Option<usize>,
+    window: Option<usize>,
 }
 
 impl Params {
@@ -541,7 +650,7 @@ impl Params {
             return Err(ValidationError::LambdaOutOfRange { got: lambda });
         }
         // -0.0 is inside the range; store +0.0 so `lambda == 0` paths see one value.
-        Ok(Self { k, lambda: lambda + 0.0, max_per_category: None })
+        Ok(Self { k, lambda: lambda + 0.0, max_per_category: None, window: None })
     }
 
     /// Adds a hard cap on items per category (`None` removes it). A cap of 0 is treated as none.
@@ -549,6 +658,26 @@ impl Params {
     pub fn with_max_per_category(mut self, cap: Option<usize>) -> Self {
         self.max_per_category = cap.filter(|&c| c > 0);
         self
+    }
+
+    /// Sets the sliding window of windowed DPP and SSD: each step compares a candidate with the
+    /// last `w − 1` picks only. `None` compares with every pick.
+    ///
+    /// # Errors
+    /// [`ValidationError::WindowOutOfRange`] outside `2..=`[`MAX_WINDOW`].
+    pub fn with_window(mut self, window: Option<u64>) -> Result<Self, ValidationError> {
+        self.window = match window {
+            None => None,
+            Some(w) if (2..=MAX_WINDOW as u64).contains(&w) => Some(w as usize),
+            Some(got) => return Err(ValidationError::WindowOutOfRange { got, max: MAX_WINDOW }),
+        };
+        Ok(self)
+    }
+
+    /// The sliding window `w`, if any.
+    #[must_use]
+    pub fn window(&self) -> Option<usize> {
+        self.window
     }
 
     /// Requested slate length (the output has `min(k, N)` items, fewer only under a category cap).

@@ -59,6 +59,12 @@ pub enum RequestError {
         /// Registry names, comma-separated.
         known: String,
     },
+    /// The algorithm calibrates to a taste profile and neither the request nor its slice has one.
+    #[error("{algorithm} calibrates the slate to a taste profile: send \"profile\": {{\"category\": weight, ...}}")]
+    MissingProfile {
+        /// The algorithm's name.
+        algorithm: &'static str,
+    },
     /// `embedding_b64` that does not decode to f32 values.
     #[error("candidate {index}: embedding_b64 {reason}")]
     InvalidBase64 {
@@ -110,7 +116,10 @@ impl RequestError {
                 ValidationError::ZeroNorm { .. } => "zero_norm_embedding",
                 ValidationError::KOutOfRange { .. } => "k_out_of_range",
                 ValidationError::LambdaOutOfRange { .. } => "lambda_out_of_range",
+                ValidationError::WindowOutOfRange { .. } => "window_out_of_range",
+                ValidationError::InvalidProfile { .. } => "invalid_profile",
             },
+            Self::MissingProfile { .. } => "missing_profile",
             Self::Kernel(_) => "internal",
         }
     }
@@ -146,7 +155,11 @@ impl RequestError {
                 | ValidationError::ZeroNorm { index } => embedding(index, *b64),
                 ValidationError::KOutOfRange { .. } => Some("k".into()),
                 ValidationError::LambdaOutOfRange { .. } => Some("lambda".into()),
+                ValidationError::WindowOutOfRange { .. } => Some("window".into()),
+                ValidationError::InvalidProfile { category: Some(ref c), .. } => Some(format!("profile.{c}")),
+                ValidationError::InvalidProfile { category: None, .. } => Some("profile".into()),
             },
+            Self::MissingProfile { .. } => Some("profile".into()),
         }
     }
 

@@ -33,6 +33,13 @@ pub struct RerankRequest {
     /// A user or session id; the same unit always lands in the same arm of a slice.
     #[serde(default)]
     pub unit_id: Option<String>,
+    /// Sliding window of `dpp` and `ssd` (2..=1000): compare with the last `window − 1` picks.
+    #[serde(default)]
+    pub window: Option<u64>,
+    /// The user's taste profile: category → non-negative weight (normalised to sum 1). Required
+    /// by `calibrated`; with any algorithm it adds `diversity.miscalibration` to the answer.
+    #[serde(default)]
+    pub profile: Option<std::collections::BTreeMap<String, f64>>,
     /// The scored candidates, each a JSON object.
     #[serde(deserialize_with = "objects")]
     pub candidates: Vec<WireCandidate>,
@@ -127,6 +134,10 @@ pub struct Diversity {
     pub distinct_categories: usize,
     /// Mean pairwise cosine distance (0 for fewer than two items); null without embeddings.
     pub intra_list_distance: Option<f64>,
+    /// `KL(p ‖ q̃)` of the slate's categories from the request's profile (Steck 2018, α = 0.01),
+    /// in nats; absent without a profile.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub miscalibration: Option<f64>,
 }
 
 /// Every non-2xx body: `{"error": {...}}`, plus `"line"` on stream and batch lines.

@@ -76,6 +76,8 @@ impl Engine {
                 ("algorithm", request.algorithm.is_some()),
                 ("lambda", request.lambda.is_some()),
                 ("k", request.k.is_some()),
+                ("window", request.window.is_some()),
+                ("profile", request.profile.is_some()),
             ];
             if let Some(&(field, _)) = overrides.iter().find(|(_, set)| *set) {
                 return Err(RequestError::SliceLocked { slice: slice.name.to_string(), field });
@@ -93,8 +95,16 @@ impl Engine {
         let limits = &self.config.server.limits;
         let k = request.k.unwrap_or(st.k);
         let params = Params::new(k, request.lambda.unwrap_or(st.lambda), limits)
+            .and_then(|p| p.with_window(request.window.or(st.window)))
             .map_err(|error| RequestError::Invalid { error, b64: false })?
             .with_max_per_category(st.max_per_category);
+        let profile: Option<Vec<(String, f64)>> = match request.profile {
+            Some(map) => Some(map.into_iter().collect()),
+            None => slice.profile.clone(),
+        };
+        if profile.is_none() && algorithm.name() == "calibrated" {
+            return Err(RequestError::MissingProfile { algorithm: algorithm.name() });
+        }
 
         if request.candidates.len() > limits.max_candidates {
             let error = ValidationError::TooManyCandidates {
@@ -125,7 +135,15 @@ impl Engine {
                 let b64 = error_index(&error).and_then(|i| b64.get(i).copied()).unwrap_or(false);
                 RequestError::Invalid { error, b64 }
             })?;
+        let input = match profile {
+            None => input,
+            Some(weights) => {
+                input.with_profile(weights).map_err(|error| RequestError::Invalid { error, b64: false })?
+            }
+        };
+        // Likewise a shadow that calibrates needs a profile.
         let shadow = shadow.filter(|sh| !sh.algorithm.needs_embeddings() || input.embeddings().is_some());
+        let shadow = shadow.filter(|sh| sh.algorithm.name() != "calibrated" || input.profile().is_some());
         Ok(Prepared {
             request_id: request.request_id,
             slice: slice.name.clone(),
@@ -228,6 +246,7 @@ impl Reranked {
             category_entropy_bits: measures::category_entropy_bits(input, slate),
             distinct_categories: measures::distinct_categories(input, slate),
             intra_list_distance: measures::intra_list_distance(input, slate),
+            miscalibration: measures::miscalibration(input, slate),
         }
     }
 

@@ -42,6 +42,8 @@ pub fn candidates(rng: &mut Rng, n: usize, d: usize, groups: usize) -> Vec<Candi
         .collect()
 }
 
+/// A validated slate with a taste profile over the generator's categories (one the slate never
+/// has, `cat-9`, included), so calibration runs on it too.
 pub fn slate(cands: Vec<CandidateInput>) -> RerankInput {
     RerankInput::new(
         cands,
@@ -50,4 +52,9 @@ pub fn slate(cands: Vec<CandidateInput>) -> RerankInput {
         &Limits { max_candidates: 100_000, ..Limits::default() },
     )
     .expect("generated slate is valid")
+    .with_profile(PROFILE.iter().map(|&(c, w)| (c.to_owned(), w)).collect())
+    .expect("the test profile is valid")
 }
+
+/// The taste profile [`slate`] attaches.
+pub const PROFILE: [(&str, f64); 4] = [("cat-0", 0.4), ("cat-1", 0.3), ("cat-2", 0.2), ("cat-9", 0.1)];

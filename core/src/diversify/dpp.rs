@@ -6,6 +6,7 @@
 mod basis;
 mod lazy;
 mod screened;
+pub(super) mod window;
 
 use pulp::{Arch, Simd, WithSimd};
 
@@ -19,7 +20,8 @@ pub(crate) use screened::ScreenBuffers;
 /// one is under it, the slate is filled by score.
 pub const EPSILON: f64 = 1e-9;
 
-/// Greedy DPP MAP: each step picks `argmax_i (1 − λ)·s_i + λ·ln d_i²`.
+/// Greedy DPP MAP: each step picks `argmax_i (1 − λ)·s_i + λ·ln d_i²`; with a window `w`
+/// ([`Params::window`]), `d_i²` is taken against the last `w − 1` picks only (module `window`).
 ///
 /// Legend: `s_i` normalised score; `λ` the request's `lambda`; `x_i` candidate i's unit embedding;
 /// `S_ij = cos(i, j) = ⟨x_i, x_j⟩` the similarity kernel; `c_i` item i's row of the Cholesky
@@ -118,6 +120,15 @@ impl Dpp {
         }
         if input.embeddings().is_none() {
             return Err(KernelError::EmbeddingsRequired { algorithm: self.name() });
+        }
+        // A window that slides before the last pick is its own kernel; one that never does
+        // changes nothing, so the unbounded kernels keep their exact picks.
+        if let Some(w) = params.window() {
+            if w.saturating_sub(1) < params.k().min(input.len()).saturating_sub(1) {
+                let sel = window::select(input, params, ws, Some(w), window::Gain::LogDet);
+                ws.check_cancelled()?;
+                return Ok(sel);
+            }
         }
         let screen = strategy != DppStrategy::Lazy && screened::screenable(input, lambda);
         let sel = Arch::new().dispatch(Run { input, params, ws, screen });

@@ -33,6 +33,12 @@ pub enum KernelError {
         /// The algorithm's registry name.
         algorithm: &'static str,
     },
+    /// The algorithm calibrates to a taste profile and the slate has none.
+    #[error("{algorithm} needs a profile")]
+    ProfileRequired {
+        /// The algorithm's registry name.
+        algorithm: &'static str,
+    },
     /// The caller stopped waiting (its deadline passed, or it disconnected), so the kernel
     /// stopped at its next step instead of burning the rest of its work.
     #[error("cancelled: the caller stopped waiting")]
@@ -83,6 +89,8 @@ diversifiers! {
     mmr::Mmr,
     dpp::Dpp,
     quota::Quota,
+    ssd::Ssd,
+    calibrated::Calibrated,
 }
 
 /// Looks a diversifier up by its registry name.
@@ -118,6 +126,8 @@ pub struct Workspace {
     basis: Vec<f64>,
     /// DPP: the vector being orthogonalised.
     scratch: Vec<f64>,
+    /// Windowed DPP and SSD: every candidate's coordinates in the window's basis, N × stride.
+    coords: Vec<f64>,
     /// DPP (screened): panels, f32 bounds and the f32 basis.
     screen: dpp::ScreenBuffers,
     /// Items taken per group, for caps and quotas.
@@ -165,7 +175,8 @@ impl Workspace {
             + (self.wide.capacity()
                 + self.running.capacity()
                 + self.basis.capacity()
-                + self.scratch.capacity())
+                + self.scratch.capacity()
+                + self.coords.capacity())
                 * size_of::<f64>()
             + self.heap.capacity() * size_of::<Bound>()
             + self.screen.retained_bytes()

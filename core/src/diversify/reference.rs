@@ -2,11 +2,14 @@
 //!
 //! Each recomputes from scratch at every step what the fast kernel maintains incrementally:
 //! MMR rescans every pair, DPP re-factorises the chosen set's Gram matrix with a textbook Cholesky
-//! and solves for every candidate's residual. They share the fast kernels' tie-breaks, `EPSILON`
+//! and solves for every candidate's residual, windowed DPP and SSD rebuild the window's basis by
+//! Gram–Schmidt and take every residual as the squared norm of the leftover vector, calibration
+//! evaluates the divergence of every candidate slate from its definition. They share the fast kernels' tie-breaks, `EPSILON`
 //! rule and score fill, so on well-separated inputs the picks must be identical.
 
 use super::by_score;
 use super::dpp::EPSILON;
+use crate::measures::miscalibration;
 use crate::model::{Params, RerankInput};
 
 /// `cos(i, j)` of the stored unit rows, in f64.
@@ -123,4 +126,130 @@ pub fn dpp(input: &RerankInput, params: &Params) -> (Vec<usize>, Vec<f64>) {
         }
     }
     (out, gains)
+}
+
+/// The unit rows of `input` in f64.
+fn unit_row(input: &RerankInput, i: usize) -> Vec<f64> {
+    let e = input.embeddings().expect("reference kernels need embeddings");
+    let inv = e.inv_norms()[i];
+    e.row(i).iter().map(|&x| f64::from(x) * inv).collect()
+}
+
+/// `x` minus its projection on the orthonormal rows `q`, twice (modified Gram–Schmidt).
+fn leftover(x: &[f64], q: &[Vec<f64>]) -> Vec<f64> {
+    let mut r = x.to_vec();
+    for _ in 0..2 {
+        for b in q {
+            let c: f64 = r.iter().zip(b).map(|(a, b)| a * b).sum();
+            for (v, bv) in r.iter_mut().zip(b) {
+                *v -= c * bv;
+            }
+        }
+    }
+    r
+}
+
+/// Residual `d_i²` of every candidate against the span of `members`' rows: an orthonormal basis
+/// built from scratch in member order (a member whose leftover is under `EPSILON` adds none),
+/// then `S_ii − ‖Qu_i‖² = 1 − Σ_q ⟨u_i, q⟩²`, the Schur complement as the DPP reference takes it.
+#[must_use]
+pub fn window_residuals(input: &RerankInput, members: &[usize]) -> Vec<f64> {
+    let mut q: Vec<Vec<f64>> = Vec::new();
+    for &j in members {
+        let r = leftover(&unit_row(input, j), &q);
+        let norm2: f64 = r.iter().map(|v| v * v).sum();
+        if norm2 >= EPSILON {
+            q.push(r.iter().map(|v| v / norm2.sqrt()).collect());
+        }
+    }
+    (0..input.len())
+        .map(|i| {
+            let u = unit_row(input, i);
+            1.0 - q.iter().map(|b| u.iter().zip(b).map(|(x, y)| x * y).sum::<f64>().powi(2)).sum::<f64>()
+        })
+        .collect()
+}
+
+/// Greedy over the last `window − 1` picks (`None`: all), recomputing every residual from
+/// scratch at every step; `log_det` selects windowed DPP's gain (with its `EPSILON` rule and
+/// score fallback), otherwise SSD's. O(k·N·w·d).
+fn windowed(input: &RerankInput, params: &Params, window: Option<usize>, log_det: bool) -> Vec<usize> {
+    let lambda = params.lambda();
+    if lambda == 0.0 {
+        return relevance(input, params);
+    }
+    let m = params.k().min(input.len());
+    let s = input.normalized();
+    let mut out: Vec<usize> = Vec::new();
+    while out.len() < m {
+        let from = window.map_or(0, |w| out.len().saturating_sub(w - 1));
+        let d2 = window_residuals(input, &out[from..]);
+        let mut best: Option<(usize, f64)> = None;
+        for i in (0..input.len()).filter(|i| !out.contains(i)) {
+            let obj = if log_det {
+                if d2[i] < EPSILON {
+                    continue;
+                }
+                (1.0 - lambda) * s[i] + lambda * d2[i].ln()
+            } else if d2[i] < EPSILON {
+                (1.0 - lambda) * s[i]
+            } else {
+                (1.0 - lambda) * s[i] + lambda * d2[i].sqrt()
+            };
+            if best.is_none_or(|(_, b)| obj > b) {
+                best = Some((i, obj));
+            }
+        }
+        match best {
+            Some((i, _)) => out.push(i),
+            None => {
+                let mut rest: Vec<usize> = (0..input.len()).filter(|i| !out.contains(i)).collect();
+                rest.sort_by(|&a, &b| by_score(input.scores(), a, b));
+                out.push(rest[0]);
+            }
+        }
+    }
+    out
+}
+
+/// Sliding-window DPP (Chen, Zhang & Zhou 2018, the window variant) by brute force.
+#[must_use]
+pub fn dpp_window(input: &RerankInput, params: &Params, window: usize) -> Vec<usize> {
+    windowed(input, params, Some(window), true)
+}
+
+/// SSD (Huang et al. 2021) by brute force, with `params.window()`.
+#[must_use]
+pub fn ssd(input: &RerankInput, params: &Params) -> Vec<usize> {
+    windowed(input, params, params.window(), false)
+}
+
+/// Calibrated greedy (Steck 2018) evaluating `KL(p ‖ q̃(I ∪ {i}))` of every candidate slate
+/// from its definition ([`miscalibration`]). O(k·N·(k + G)).
+///
+/// # Panics
+/// Without a profile.
+#[must_use]
+pub fn calibrated(input: &RerankInput, params: &Params) -> Vec<usize> {
+    let lambda = params.lambda();
+    if lambda == 0.0 {
+        return relevance(input, params);
+    }
+    let m = params.k().min(input.len());
+    let s = input.normalized();
+    let mut out: Vec<usize> = Vec::new();
+    while out.len() < m {
+        let mut best: Option<(usize, f64)> = None;
+        for i in (0..input.len()).filter(|i| !out.contains(i)) {
+            let mut with = out.clone();
+            with.push(i);
+            let kl = miscalibration(input, &with).expect("calibration needs a profile");
+            let obj = (1.0 - lambda) * s[i] - lambda * kl;
+            if best.is_none_or(|(_, b)| obj > b) {
+                best = Some((i, obj));
+            }
+        }
+        out.push(best.expect("m <= N leaves a candidate").0);
+    }
+    out
 }

@@ -34,14 +34,19 @@ pub fn describe(config: &Config) -> String {
             let share = 100.0 * arm.weight as f64 / slice.total_weight as f64;
             let _ = writeln!(
                 out,
-                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}",
+                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}{}",
                 arm.name,
                 st.algorithm.name(),
                 st.lambda,
                 st.k,
                 st.score_transform.name(),
                 cap,
+                st.window.map_or_else(String::new, |w| format!(" window={w}")),
             );
+        }
+        if let Some(profile) = &slice.profile {
+            let text: Vec<String> = profile.iter().map(|(c, w)| format!("{c}={w}")).collect();
+            let _ = writeln!(out, "  profile: {}", text.join(" "));
         }
         if let Some(sh) = &slice.shadow {
             let _ = writeln!(

@@ -73,8 +73,12 @@ pub struct RawSlice {
     pub score_transform: Option<String>,
     /// Hard cap on items per category in one slate.
     pub max_per_category: Option<u64>,
-    /// When true, requests may not override `algorithm`, `lambda` or `k`.
+    /// When true, requests may not override `algorithm`, `lambda`, `k`, `window` or `profile`.
     pub locked: Option<bool>,
+    /// Sliding window of `dpp` and `ssd` (2..=1000); absent compares with every pick.
+    pub window: Option<u64>,
+    /// Default taste profile (category → weight) for requests that send none.
+    pub profile: Option<BTreeMap<String, f64>>,
     /// Weighted A/B arms; each overrides the slice's settings it names.
     pub arms: Option<Vec<RawArm>>,
     /// A diversifier run beside production on a sample of requests, never affecting answers.
@@ -99,6 +103,8 @@ pub struct RawArm {
     pub score_transform: Option<String>,
     /// Overrides the slice's per-category cap.
     pub max_per_category: Option<u64>,
+    /// Overrides the slice's window.
+    pub window: Option<u64>,
 }
 
 /// The `[slices.NAME.shadow]` table.

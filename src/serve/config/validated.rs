@@ -7,7 +7,7 @@ use std::net::SocketAddr;
 use std::time::Duration;
 
 use medley_core::diversify::{self, Diversifier};
-use medley_core::model::{Limits, ScoreTransform};
+use medley_core::model::{Limits, ScoreTransform, MAX_WINDOW};
 
 use super::error::{invalid, ConfigError};
 use super::hash::{arm_bucket, fnv1a64};
@@ -60,6 +60,8 @@ pub struct Settings {
     pub score_transform: ScoreTransform,
     /// Per-category cap.
     pub max_per_category: Option<usize>,
+    /// Sliding window of `dpp` and `ssd`.
+    pub window: Option<u64>,
 }
 
 /// A validated arm.
@@ -100,6 +102,8 @@ pub struct Slice {
     pub locked: bool,
     /// Shadow run, if any.
     pub shadow: Option<Shadow>,
+    /// Default taste profile for requests that send none.
+    pub profile: Option<Vec<(String, f64)>>,
     /// The table as written, for `check-config` and the admin view.
     pub raw: RawSlice,
 }
@@ -311,6 +315,7 @@ fn settings(
     k: Option<u64>,
     score_transform: Option<&str>,
     max_per_category: Option<u64>,
+    window: Option<u64>,
     base: &RawSlice,
     limits: &Limits,
 ) -> Result<Settings, ConfigError> {
@@ -339,7 +344,11 @@ fn settings(
         }
         Some(c) => Some(to_usize(c)),
     };
-    Ok(Settings { algorithm, lambda, k, score_transform, max_per_category })
+    let window = window.or(base.window);
+    if let Some(w) = window.filter(|w| !(2..=MAX_WINDOW as u64).contains(w)) {
+        return Err(invalid(field("window"), format!("{w} is outside 2..={MAX_WINDOW}")));
+    }
+    Ok(Settings { algorithm, lambda, k, score_transform, max_per_category, window })
 }
 
 /// Validates one slice table; `name` is its key under `[slices]`.
@@ -358,6 +367,7 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
         raw.k,
         raw.score_transform.as_deref(),
         raw.max_per_category,
+        raw.window,
         &RawSlice::default(),
         limits,
     )?;
@@ -398,6 +408,7 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
                     a.k,
                     a.score_transform.as_deref(),
                     a.max_per_category,
+                    a.window,
                     &raw,
                     limits,
                 )?;
@@ -428,7 +439,29 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
             Some(Shadow { algorithm, lambda, sample_rate })
         }
     };
-    Ok(Slice { name: name.into(), arms, total_weight, locked: raw.locked.unwrap_or(false), shadow, raw })
+    let profile = match &raw.profile {
+        None => None,
+        Some(weights) => {
+            let list: Vec<(String, f64)> = weights.iter().map(|(c, &w)| (c.clone(), w)).collect();
+            if let Some((c, w)) = list.iter().find(|(_, w)| !w.is_finite() || *w < 0.0) {
+                return Err(invalid(format!("{at}.profile.{c}"), format!("{w} is not a finite number >= 0")));
+            }
+            let sum: f64 = list.iter().map(|(_, w)| w).sum();
+            if sum <= 0.0 || !sum.is_finite() {
+                return Err(invalid(format!("{at}.profile"), "the weights must have a positive, finite sum"));
+            }
+            Some(list)
+        }
+    };
+    Ok(Slice {
+        name: name.into(),
+        arms,
+        total_weight,
+        locked: raw.locked.unwrap_or(false),
+        shadow,
+        profile,
+        raw,
+    })
 }
 
 /// Slice names become metric label values; keep them short and plain.

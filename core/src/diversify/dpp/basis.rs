@@ -131,7 +131,7 @@ fn dot4<S: Simd>(simd: S, x: &[f64], q: &[f64], d: usize) -> [f64; 4] {
 /// f64 dot product with four FMA chains: at d = 64 (16 AVX2 vectors) two chains left the loop
 /// bound by FMA latency (4 cycles) rather than by the two FMA ports.
 #[inline(always)]
-fn dot<S: Simd>(simd: S, a: &[f64], b: &[f64]) -> f64 {
+pub(super) fn dot<S: Simd>(simd: S, a: &[f64], b: &[f64]) -> f64 {
     let (av, at) = S::as_simd_f64s(a);
     let (bv, bt) = S::as_simd_f64s(b);
     let zero = simd.splat_f64s(0.0);

@@ -1,0 +1,301 @@
+//! Greedy selection against a sliding window of the latest picks: the residual `d_i²` of each
+//! candidate's unit embedding against the span of the last `w − 1` picks, maintained as the
+//! window slides. Windowed DPP ([`super::Dpp`] with `window`) and SSD ([`crate::diversify::Ssd`])
+//! are this loop with two gains.
+//!
+//! Legend: `u_i` candidate i's unit embedding (f64); `W` the window, the last `min(w − 1, t)`
+//! picks before step t; `Q` an orthonormal basis of `span{u_j : j ∈ W}` (one row per member, in
+//! window order); `C_i = Q·u_i` candidate i's coordinates in it; `d_i² = 1 − ‖C_i‖²`.
+//!
+//! # Method
+//! - **A pick enters**: its component orthogonal to `Q` (classical Gram–Schmidt applied twice,
+//!   as in the unbounded kernel) becomes a new basis row `q`; every candidate gains the
+//!   coordinate `⟨u_i, q⟩` and loses its square from `d_i²`. O(N·d).
+//! - **The oldest member leaves**: the members' coordinates form an upper-triangular `R` (the R
+//!   of the QR factorisation of the window's rows). Dropping its first column leaves an upper
+//!   Hessenberg matrix, which Givens rotations of neighbouring rows make triangular again, with a
+//!   zero last row (G. H. Golub and C. F. Van Loan, *Matrix Computations*, 4th ed., §6.5.2,
+//!   deleting a column from a QR factorisation; section number from memory). The same rotations
+//!   turn `Q`, and every candidate's `C_i`, into the basis and coordinates of the new window plus
+//!   one last row orthogonal to it, which is dropped: `d_i²` gains that coordinate's square.
+//!   O(N·w + w·d).
+//! - **A pick in the span already** (`d_j² < EPSILON`: a fallback pick of windowed DPP, or an SSD
+//!   pick with no new direction) adds no basis row; while such a member is in the window, the
+//!   next departure rebuilds `Q` and every `C_i` from the members (O(w²·d + N·w·d)), which is
+//!   exact whatever the span did.
+//!
+//! With no window (or a window that never slides before the last pick) nothing leaves, and only
+//! `d_i²` is kept, as in the unbounded kernel.
+//!
+//! # Complexity
+//! O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory
+//! O(N·d) for the f64 rows and O(N·min(w, d)) for the coordinates when the window slides.
+//!
+//! # Invariants
+//! `Q` stays orthonormal (rotations are orthogonal); `C_i = Q·u_i` for every candidate; with no
+//! member in the span already, `R` is upper triangular with a positive-magnitude diagonal; the
+//! output has no duplicates and at most `min(k, N)` items.
+//!
+//! # Numerical notes
+//! All f64. `d_i²` is recomputed as `1 − ‖C_i‖²` after each departure (not accumulated), so it
+//! carries no drift from earlier steps; with no window it is updated by subtraction exactly as
+//! the unbounded kernel does, so the two agree bit for bit on the same picks.
+
+use std::collections::VecDeque;
+
+use pulp::{Arch, Simd, WithSimd};
+
+use super::basis::{dot, push_basis_vector};
+use super::EPSILON;
+use crate::diversify::{allowed, by_score, take, Workspace};
+use crate::model::{Params, RerankInput, Selection};
+
+/// What a step maximises over the eligible candidates, with `s_i` the normalised score.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Gain {
+    /// Windowed DPP: `(1 − λ)·s_i + λ·ln d_i²` over candidates with `d_i² ≥ EPSILON`; a step
+    /// with none takes the best remaining candidate by score.
+    LogDet,
+    /// SSD: `(1 − λ)·s_i + λ·d_i` over every remaining candidate, `d_i = 0` when
+    /// `d_i² < EPSILON`.
+    Volume,
+}
+
+/// Runs the windowed greedy. The caller has checked `lambda > 0`, `N > 0` and embeddings;
+/// `window` is `w` (members are the last `w − 1` picks), `None` for all picks.
+pub(crate) fn select(
+    input: &RerankInput,
+    params: &Params,
+    ws: &mut Workspace,
+    window: Option<usize>,
+    gain: Gain,
+) -> Selection {
+    Arch::new().dispatch(Run { input, params, ws, window, gain })
+}
+
+struct Run<'a> {
+    input: &'a RerankInput,
+    params: &'a Params,
+    ws: &'a mut Workspace,
+    window: Option<usize>,
+    gain: Gain,
+}
+
+impl WithSimd for Run<'_> {
+    type Output = Selection;
+
+    #[inline(always)]
+    fn with_simd<S: Simd>(self, simd: S) -> Selection {
+        let Self { input, params, ws, window, gain } = self;
+        run(simd, input, params, ws, window, gain)
+    }
+}
+
+#[inline(always)]
+fn run<S: Simd>(
+    simd: S,
+    input: &RerankInput,
+    params: &Params,
+    ws: &mut Workspace,
+    window: Option<usize>,
+    gain: Gain,
+) -> Selection {
+    let emb = input.embeddings().expect("select checked for embeddings");
+    let (n, d) = (input.len(), emb.dim());
+    let m = params.k().min(n);
+    let lambda = params.lambda();
+    let s = input.normalized();
+    ws.reset(n, input.group_count());
+    ws.wide.clear();
+    ws.wide.reserve(n * d);
+    for (row, &inv) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()) {
+        ws.wide.extend(row.iter().map(|&x| f64::from(x) * inv));
+    }
+    // Members: the last `capacity` picks. A window that cannot fill before the last pick never
+    // slides, so it needs no coordinates.
+    let capacity = window.map_or(usize::MAX, |w| w.saturating_sub(1).max(1));
+    let slides = capacity < m.saturating_sub(1);
+    // At most min(capacity, d) independent members, so that many coordinates per candidate.
+    let stride = if slides { capacity.min(d) } else { 0 };
+    let mut st = State {
+        members: VecDeque::with_capacity(capacity.min(m)),
+        clean: true,
+        rank: 0,
+        stride,
+        d,
+    };
+    ws.basis.clear();
+    ws.coords.clear();
+    ws.coords.resize(n * stride, 0.0);
+    ws.running.clear();
+    ws.running.resize(n, 1.0);
+    let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
+
+    while sel.indices.len() < m {
+        if ws.cancelled() {
+            break;
+        }
+        let mut best: Option<(f64, usize)> = None;
+        for i in 0..n {
+            if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
+                continue;
+            }
+            let d2 = ws.running[i];
+            let value = match gain {
+                Gain::LogDet if d2 < EPSILON => continue,
+                Gain::LogDet => (1.0 - lambda) * s[i] + lambda * d2.ln(),
+                // In the span to working precision: no volume (the rounding left of a zero
+                // residual, ±1e-16, must not rank candidates by its square root).
+                Gain::Volume if d2 < EPSILON => (1.0 - lambda) * s[i],
+                Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
+            };
+            // Strictly greater: among equal values the lower index, met first, stays.
+            if best.is_none_or(|(b, _)| value > b) {
+                best = Some((value, i));
+            }
+        }
+        let pick = match best {
+            Some((_, i)) => i,
+            None => {
+                // Windowed DPP with no candidate adding a direction: this step goes by score.
+                let fallback = (0..n)
+                    .filter(|&i| !ws.taken[i] && allowed(input, params, &ws.group_taken, i))
+                    .min_by(|&a, &b| by_score(input.scores(), a, b));
+                let Some(i) = fallback else { break };
+                sel.exhausted_at.get_or_insert(sel.indices.len());
+                i
+            }
+        };
+        let d2 = ws.running[pick];
+        take(input, ws, &mut sel, pick, d2);
+        if sel.indices.len() < m {
+            if st.members.len() == capacity {
+                st.leave(simd, ws);
+            }
+            st.enter(simd, ws, pick, n);
+        }
+    }
+    sel
+}
+
+/// The window's members and how the basis relates to them.
+struct State {
+    /// Picks in the window, oldest first.
+    members: VecDeque<usize>,
+    /// True when every member has its own basis row, in member order (then `R` is triangular
+    /// and a departure is a sequence of rotations); false once a member in the span already was
+    /// added without one.
+    clean: bool,
+    /// Basis rows.
+    rank: usize,
+    /// Coordinates kept per candidate (0 when the window never slides).
+    stride: usize,
+    d: usize,
+}
+
+impl State {
+    /// Adds pick `j` to the window: a new basis row and every candidate's coordinate on it.
+    #[inline(always)]
+    fn enter<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize, n: usize) {
+        self.members.push_back(j);
+        if ws.running[j] < EPSILON || self.rank == self.d {
+            // In the span already (to working precision): no new direction.
+            self.clean = false;
+            return;
+        }
+        self.push_row(simd, ws, j, n);
+    }
+
+    /// Orthonormalises member `j` against the basis, appends it, and projects every candidate.
+    #[inline(always)]
+    fn push_row<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize, n: usize) {
+        let d = self.d;
+        let Workspace { wide, basis, scratch, coords, running, .. } = &mut *ws;
+        push_basis_vector(simd, &wide[j * d..(j + 1) * d], basis, scratch, d);
+        let t = self.rank;
+        let q = &basis[t * d..(t + 1) * d];
+        for i in 0..n {
+            let e = dot(simd, &wide[i * d..(i + 1) * d], q);
+            running[i] -= e * e;
+            if self.stride > 0 {
+                coords[i * self.stride + t] = e;
+            }
+        }
+        self.rank += 1;
+    }
+
+    /// Removes the oldest member: rotations when the basis is clean, else a rebuild.
+    #[inline(always)]
+    fn leave<S: Simd>(&mut self, simd: S, ws: &mut Workspace) {
+        self.members.pop_front();
+        let n = ws.running.len();
+        if !self.clean {
+            self.rebuild(simd, ws, n);
+            return;
+        }
+        let (d, stride, r) = (self.d, self.stride, self.rank);
+        let Workspace { basis, coords, running, .. } = &mut *ws;
+        // Column t of the remaining R is member t's coordinates (members shifted down by one).
+        for t in 0..r.saturating_sub(1) {
+            let member = self.members[t];
+            let (a, b) = (coords[member * stride + t], coords[member * stride + t + 1]);
+            let h = a.hypot(b);
+            debug_assert!(h > 0.0, "a clean window's members are independent");
+            let (c, sn) = (a / h, b / h);
+            for i in 0..n {
+                let row = &mut coords[i * stride..i * stride + stride];
+                let (x, y) = (row[t], row[t + 1]);
+                row[t] = c * x + sn * y;
+                row[t + 1] = c * y - sn * x;
+            }
+            let (qa, qb) = basis[t * d..(t + 2) * d].split_at_mut(d);
+            for (x, y) in qa.iter_mut().zip(qb.iter_mut()) {
+                let (u, v) = (*x, *y);
+                *x = c * u + sn * v;
+                *y = c * v - sn * u;
+            }
+        }
+        // The last row is orthogonal to the remaining members: drop it.
+        basis.truncate((r - 1) * d);
+        self.rank = r - 1;
+        for i in 0..n {
+            let row = &mut coords[i * stride..i * stride + stride];
+            row[r - 1] = 0.0;
+            running[i] = 1.0 - row[..r - 1].iter().map(|c| c * c).sum::<f64>();
+        }
+    }
+
+    /// Rebuilds the basis from the members in order (skipping those in the span of the ones
+    /// before) and every candidate's coordinates and residual.
+    #[inline(always)]
+    fn rebuild<S: Simd>(&mut self, simd: S, ws: &mut Workspace, n: usize) {
+        let d = self.d;
+        ws.basis.clear();
+        ws.coords.fill(0.0);
+        ws.running.fill(1.0);
+        self.rank = 0;
+        self.clean = true;
+        let members: Vec<usize> = self.members.iter().copied().collect();
+        for j in members {
+            // The member's residual against the rows so far decides whether it adds one.
+            let removed: f64 = {
+                let x = &ws.wide[j * d..(j + 1) * d];
+                (0..self.rank)
+                    .map(|t| {
+                        let e = dot(simd, x, &ws.basis[t * d..(t + 1) * d]);
+                        e * e
+                    })
+                    .sum()
+            };
+            if 1.0 - removed < EPSILON || self.rank == d {
+                self.clean = false;
+                continue;
+            }
+            self.push_row(simd, ws, j, n);
+        }
+        for i in 0..n {
+            let row = &ws.coords[i * self.stride..i * self.stride + self.stride];
+            ws.running[i] = 1.0 - row[..self.rank].iter().map(|c| c * c).sum::<f64>();
+        }
+    }
+}
