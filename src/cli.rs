@@ -90,7 +90,8 @@ pub enum Command {
         /// Logged requests, one per line, each with a "clicked" list of ids (`medley sample --with-clicks` writes such a file).
         #[arg(long)]
         input: PathBuf,
-        /// Algorithms to compare, comma-separated.
+        /// Algorithms to compare, comma-separated (relevance, mmr, dpp, quota, ssd, calibrated;
+        /// calibrated needs a "profile" on every line).
         #[arg(long, default_value = "relevance,mmr,dpp,quota")]
         algorithms: String,
         /// Lambdas: a list (0,0.1,0.5) or start:end:step.
@@ -99,6 +100,10 @@ pub enum Command {
         /// Slate length.
         #[arg(long, default_value_t = 10)]
         k: usize,
+        /// Sliding windows for dpp and ssd, comma-separated (e.g. 5,10): each adds a line of
+        /// cells beside the unbounded one.
+        #[arg(long, value_delimiter = ',')]
+        windows: Vec<usize>,
         /// Directory for frontier.csv and frontier.svg.
         #[arg(long, default_value = "replay-out")]
         out: PathBuf,

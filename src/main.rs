@@ -96,7 +96,7 @@ fn run(command: Command) -> anyhow::Result<()> {
             let mut writer = open_output(&output)?;
             medley::offline::sample::write(&spec, &mut writer).context("writing the corpus")
         }
-        Command::Replay { input, algorithms, lambdas, k, out, pick } => {
+        Command::Replay { input, algorithms, lambdas, k, windows, out, pick } => {
             let algorithms = algorithms
                 .split(',')
                 .map(|name| {
@@ -112,6 +112,9 @@ fn run(command: Command) -> anyhow::Result<()> {
                 .transpose()
                 .map_err(anyhow::Error::msg)?;
             anyhow::ensure!((1..=1000).contains(&k), "--k {k} is outside 1..=1000");
+            if let Some(w) = windows.iter().find(|w| !(2..=1000).contains(*w)) {
+                anyhow::bail!("--windows: {w} is outside 2..=1000");
+            }
             // Replay validates on an unlocked default slice with the embedded limits.
             let engine = Engine::new(Config::embedded_default(), 1);
             let file = std::fs::File::open(&input).with_context(|| format!("opening {}", input.display()))?;
@@ -125,7 +128,7 @@ fn run(command: Command) -> anyhow::Result<()> {
                 "no usable line in {} (each needs embeddings and \"clicked\")",
                 input.display()
             );
-            let opts = medley::offline::replay::Options { algorithms, lambdas, k, out, pick };
+            let opts = medley::offline::replay::Options { algorithms, lambdas, windows, k, out, pick };
             print!("{}", medley::offline::replay::run(&corpus, &opts)?);
             Ok(())
         }

@@ -104,3 +104,65 @@ fn the_binary_writes_a_complete_csv_and_well_formed_svg_and_picks() {
         assert!(text.contains(label), "the plot lacks {label:?}");
     }
 }
+
+/// Issue 17 in replay: `--windows` adds a line of cells per window to dpp and ssd (unbounded
+/// kept), the CSV names the window, the pick prints it, and calibration replays logged
+/// profiles, or says which lines lack one.
+#[test]
+fn windows_and_calibration_join_the_replay_grid() {
+    let dir = std::env::temp_dir().join(format!("medley-replay-17-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    let spec = SampleSpec { requests: 60, candidates: 40, dim: 8, seed: 5, with_clicks: true, b64: true };
+    let mut bytes = Vec::new();
+    write(&spec, &mut bytes).unwrap();
+    let plain = dir.join("plain.jsonl");
+    std::fs::write(&plain, &bytes).unwrap();
+    // The same lines with a taste profile each.
+    let profiled: String = String::from_utf8(bytes)
+        .unwrap()
+        .lines()
+        .map(|l| {
+            let mut v: serde_json::Value = serde_json::from_str(l).unwrap();
+            v["profile"] = serde_json::json!({"tents": 3.0, "stoves": 1.0, "footwear": 2.0});
+            format!("{v}\n")
+        })
+        .collect();
+    let with_profiles = dir.join("profiled.jsonl");
+    std::fs::write(&with_profiles, profiled).unwrap();
+    let bin = env!("CARGO_BIN_EXE_medley");
+    let replay = |input: &std::path::Path, algorithms: &str, extra: &[&str]| {
+        Command::new(bin)
+            .args([
+                "replay",
+                "--input",
+                input.to_str().unwrap(),
+                "--algorithms",
+                algorithms,
+                "--lambdas",
+                "0,0.6",
+            ])
+            .args(["--out", dir.to_str().unwrap()])
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let out = replay(&plain, "dpp,ssd,mmr", &["--windows", "3,6", "--pick", "ndcg>=0.5*baseline"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let report = String::from_utf8(out.stdout).unwrap();
+    assert!(report.contains("dpp w=3") && report.contains("ssd w=6"), "{report}");
+    let csv = std::fs::read_to_string(dir.join("frontier.csv")).unwrap();
+    let rows: Vec<&str> = csv.lines().collect();
+    // Header, baseline, dpp and ssd in 3 window settings x 2 lambdas, mmr x 2 lambdas.
+    assert_eq!(rows.len(), 2 + 2 * 3 * 2 + 2, "{csv}");
+    assert!(rows.iter().any(|r| r.starts_with("dpp,0.6,3,")), "{csv}");
+    assert!(rows.iter().any(|r| r.starts_with("ssd,0.6,,")), "{csv}");
+    assert!(rows.iter().any(|r| r.starts_with("mmr,0.6,,")), "{csv}");
+
+    let out = replay(&plain, "calibrated", &[]);
+    assert!(!out.status.success());
+    assert!(String::from_utf8_lossy(&out.stderr).contains("60 of 60 lines have none"));
+    let out = replay(&with_profiles, "calibrated", &[]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(String::from_utf8(out.stdout).unwrap().contains("calibrated"));
+}

@@ -833,5 +833,14 @@ profile = { "cat-0" = 5.0, "cat-1" = 3.0, "cat-2" = 2.0 }
         (out[2]["error"]["code"].as_str(), out[2]["line"].as_u64()),
         (Some("window_out_of_range"), Some(3))
     );
+    // Every profiled slate is measured: the two calibrated answers above, the taste slice's, and
+    // the stream's.
+    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
+    let count: f64 = text
+        .lines()
+        .filter(|l| l.starts_with("medley_miscalibration_count"))
+        .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+        .sum();
+    assert!(count >= 3.0, "medley_miscalibration_count {count}");
     server.stop().await;
 }

@@ -10,7 +10,9 @@
 #![allow(unsafe_code, missing_docs)]
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
-use medley_core::diversify::{reference, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance};
+use medley_core::diversify::{
+    reference, Calibrated, Diversifier, Dpp, DppStrategy, Mmr, Quota, Relevance, Ssd,
+};
 use medley_core::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
 use std::hint::black_box;
 use std::time::Duration;
@@ -59,6 +61,23 @@ fn kernels(c: &mut Criterion) {
             let mut ws = Workspace::new();
             group.bench_function(BenchmarkId::from_parameter(algo.name()), |b| {
                 b.iter(|| black_box(algo.select(black_box(&input), &params, &mut ws).unwrap()))
+            });
+        }
+        // Issue 17's algorithms: windowed DPP and SSD at w = 10, SSD unbounded, calibration to
+        // an uneven profile over the eight categories (one absent).
+        let windowed = params.with_window(Some(10)).unwrap();
+        let profiled =
+            input.clone().with_profile((0..9).map(|g| (format!("g{g}"), 1.0 + g as f64)).collect()).unwrap();
+        for (label, algo, p, slate) in [
+            ("dpp_window10", &Dpp as &dyn Diversifier, &windowed, &input),
+            ("ssd_window10", &Ssd, &windowed, &input),
+            ("ssd", &Ssd, &params, &input),
+            ("calibrated", &Calibrated, &params, &profiled),
+        ] {
+            let mut ws = Workspace::new();
+            group.throughput(Throughput::Elements(if label == "calibrated" { 0 } else { macs(0) }));
+            group.bench_function(BenchmarkId::from_parameter(label), |b| {
+                b.iter(|| black_box(algo.select(black_box(slate), p, &mut ws).unwrap()))
             });
         }
         // The lazy strategy, which `dpp` (screened on these slates) replaced as the default.

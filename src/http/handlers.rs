@@ -41,6 +41,7 @@ struct Served {
     k: usize,
     entropy: f64,
     ild: Option<f64>,
+    miscalibration: Option<f64>,
     request_id: Option<String>,
 }
 
@@ -62,6 +63,7 @@ fn serve_prepared(
         k: reranked.selection.indices.len(),
         entropy: response.diversity.category_entropy_bits,
         ild: response.diversity.intra_list_distance,
+        miscalibration: response.diversity.miscalibration,
         request_id: response.request_id,
     };
     // The answer is built; the shadow gets the validated slate and the primary picks by move.
@@ -109,6 +111,7 @@ async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Resul
         served.n,
         served.entropy,
         served.ild,
+        served.miscalibration,
     );
     Ok(served)
 }

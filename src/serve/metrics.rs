@@ -33,6 +33,8 @@ pub struct Metrics {
     pub entropy: HistogramVec,
     /// `medley_last_category_entropy{slice, algorithm}`: entropy of the latest slate.
     pub last_entropy: GaugeVec,
+    /// `medley_miscalibration{slice, arm, algorithm}`: KL of each profiled slate, nats.
+    pub miscalibration: HistogramVec,
     /// `medley_last_intra_list_distance{slice, algorithm}`: ILD of the latest slate with embeddings.
     pub last_ild: GaugeVec,
     /// `medley_candidates_per_request{slice}`.
@@ -121,6 +123,14 @@ impl Metrics {
                 "Shannon entropy (base 2) of the categories of each served slate.",
             )
             .buckets(ENTROPY_BUCKETS.to_vec()),
+            &["slice", "arm", "algorithm"],
+        ));
+        let miscalibration = must(HistogramVec::new(
+            HistogramOpts::new(
+                "medley_miscalibration",
+                "KL divergence (nats) of each served slate's categories from its request's profile (Steck 2018); slates with a profile only.",
+            )
+            .buckets(vec![0.01, 0.03, 0.1, 0.3, 1.0, 2.0, 3.0, 4.7]),
             &["slice", "arm", "algorithm"],
         ));
         let last_entropy = must(GaugeVec::new(
@@ -234,6 +244,7 @@ impl Metrics {
         reg(Box::new(entropy.clone()));
         reg(Box::new(last_entropy.clone()));
         reg(Box::new(last_ild.clone()));
+        reg(Box::new(miscalibration.clone()));
         reg(Box::new(candidates.clone()));
         reg(Box::new(panics.clone()));
         reg(Box::new(shed.clone()));
@@ -262,6 +273,7 @@ impl Metrics {
             entropy,
             last_entropy,
             last_ild,
+            miscalibration,
             candidates,
             panics,
             shed,
@@ -318,6 +330,7 @@ impl Metrics {
         n: usize,
         entropy: f64,
         ild: Option<f64>,
+        miscalibration: Option<f64>,
     ) {
         let labels = [slice, arm, algorithm];
         self.rerank_duration.with_label_values(&labels).observe(seconds);
@@ -327,6 +340,9 @@ impl Metrics {
             self.last_ild.with_label_values(&labels).set(ild);
         }
         self.candidates.with_label_values(&[slice]).observe(n as f64);
+        if let Some(kl) = miscalibration {
+            self.miscalibration.with_label_values(&labels).observe(kl);
+        }
     }
 
     /// Records the config now served: its generation, and its digest as the one
@@ -361,7 +377,7 @@ mod tests {
     fn renders_every_family_after_one_slate() {
         let m = Metrics::new();
         m.requests.with_label_values(&["200"]).inc();
-        m.observe_slate("default", "default", "dpp", 0.0004, 500, 1.5, Some(0.4));
+        m.observe_slate("default", "default", "dpp", 0.0004, 500, 1.5, Some(0.4), Some(0.2));
         let text = String::from_utf8(m.render()).unwrap();
         for name in [
             "medley_requests_total{status=\"200\"} 1",

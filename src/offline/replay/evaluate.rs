@@ -41,16 +41,33 @@ impl Sums {
 /// Evaluates one (algorithm, lambda) on every slate, in parallel.
 ///
 /// # Errors
-/// A message if the algorithm rejects a slate (cannot happen for validated slates with
-/// embeddings; reported rather than panicking).
+/// As [`evaluate_window`].
 pub fn evaluate(
     corpus: &Corpus,
     algorithm: &'static dyn Diversifier,
     lambda: f64,
     k: usize,
 ) -> Result<Point, String> {
+    evaluate_window(corpus, algorithm, lambda, k, None)
+}
+
+/// Evaluates one (algorithm, lambda, window) on every slate, in parallel.
+///
+/// # Errors
+/// A message if the algorithm rejects a slate (cannot happen for validated slates with
+/// embeddings, and with profiles for `calibrated`; reported rather than panicking), or the
+/// window is outside 2..=1000.
+pub fn evaluate_window(
+    corpus: &Corpus,
+    algorithm: &'static dyn Diversifier,
+    lambda: f64,
+    k: usize,
+    window: Option<usize>,
+) -> Result<Point, String> {
     let limits = medley_core::model::Limits { max_k: k.max(1), ..medley_core::model::Limits::default() };
-    let params = Params::new(k as u64, lambda, &limits).map_err(|e| e.to_string())?;
+    let params = Params::new(k as u64, lambda, &limits)
+        .and_then(|p| p.with_window(window.map(|w| w as u64)))
+        .map_err(|e| e.to_string())?;
     let relevance = diversify::by_name("relevance").ok_or("relevance is registered")?;
     let per_slate: Result<Vec<(Sums, Vec<usize>)>, String> = corpus
         .slates
@@ -89,6 +106,7 @@ pub fn evaluate(
     let exposed = exposure.iter().filter(|&&e| e > 0).count();
     Ok(Point {
         algorithm: algorithm.name(),
+        window,
         lambda,
         recall: total.recall / n,
         ndcg: total.ndcg / n,

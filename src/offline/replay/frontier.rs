@@ -7,6 +7,8 @@
 pub struct Point {
     /// Algorithm.
     pub algorithm: &'static str,
+    /// The sliding window of `dpp` and `ssd`, when the cell has one.
+    pub window: Option<usize>,
     /// Lambda.
     pub lambda: f64,
     /// Mean recall@k over all logged clicks.
@@ -86,6 +88,15 @@ pub fn parse_pick(text: &str) -> Result<PickRule, String> {
 }
 
 impl Point {
+    /// The cell's algorithm as the report names it: `dpp`, or `dpp w=10` with a window.
+    #[must_use]
+    pub fn label(&self) -> String {
+        match self.window {
+            None => self.algorithm.to_owned(),
+            Some(w) => format!("{} w={w}", self.algorithm),
+        }
+    }
+
     /// The value of a named accuracy metric.
     #[must_use]
     pub fn metric(&self, name: &str) -> f64 {
@@ -99,19 +110,15 @@ impl Point {
     }
 }
 
-/// Per algorithm, the most diverse point (highest mean entropy) that keeps the rule; `None` for an
-/// algorithm with no such point.
+/// Per algorithm (and window), the most diverse point (highest mean entropy) that keeps the
+/// rule; `None` for one with no such point.
 #[must_use]
-pub fn pick<'a>(
-    points: &'a [Point],
-    baseline: &Point,
-    rule: &PickRule,
-) -> Vec<(&'static str, Option<&'a Point>)> {
+pub fn pick<'a>(points: &'a [Point], baseline: &Point, rule: &PickRule) -> Vec<(String, Option<&'a Point>)> {
     let floor = rule.factor * baseline.metric(rule.metric);
-    let mut names: Vec<&'static str> = Vec::new();
+    let mut names: Vec<String> = Vec::new();
     for p in points {
-        if !names.contains(&p.algorithm) {
-            names.push(p.algorithm);
+        if !names.contains(&p.label()) {
+            names.push(p.label());
         }
     }
     names
@@ -119,7 +126,7 @@ pub fn pick<'a>(
         .map(|name| {
             let best = points
                 .iter()
-                .filter(|p| p.algorithm == name && p.metric(rule.metric) >= floor)
+                .filter(|p| p.label() == name && p.metric(rule.metric) >= floor)
                 .max_by(|a, b| a.entropy.total_cmp(&b.entropy).then(b.lambda.total_cmp(&a.lambda)));
             (name, best)
         })
@@ -127,15 +134,16 @@ pub fn pick<'a>(
 }
 
 /// The CSV header of `frontier.csv`.
-pub const CSV_HEADER: &str = "algorithm,lambda,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
+pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
 
 /// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
 #[must_use]
 pub fn csv_row(label: &str, p: &Point) -> String {
     format!(
-        "{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
+        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
         label,
         p.lambda,
+        p.window.map_or_else(String::new, |w| w.to_string()),
         p.recall,
         p.ndcg,
         p.recall_reachable,

@@ -19,7 +19,7 @@ mod frontier;
 pub mod plot;
 mod read;
 
-pub use evaluate::evaluate;
+pub use evaluate::{evaluate, evaluate_window};
 pub use frontier::{csv_row, parse_lambdas, parse_pick, pick, PickRule, Point, CSV_HEADER};
 pub use read::{read_corpus, Corpus, Slate};
 
@@ -32,6 +32,8 @@ pub struct Options {
     pub algorithms: Vec<&'static dyn Diversifier>,
     /// Lambda grid.
     pub lambdas: Vec<f64>,
+    /// Windows for `dpp` and `ssd`: each adds a line of cells beside the unbounded one.
+    pub windows: Vec<usize>,
     /// Slate length.
     pub k: usize,
     /// Output directory for frontier.csv and frontier.svg.
@@ -50,16 +52,37 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     use std::fmt::Write as _;
     let relevance = diversify::by_name("relevance").context("relevance is registered")?;
     let baseline = evaluate(corpus, relevance, 0.0, opts.k).map_err(anyhow::Error::msg)?;
-    let cells: Vec<(&'static dyn Diversifier, f64)> =
-        opts.algorithms.iter().flat_map(|&a| opts.lambdas.iter().map(move |&l| (a, l))).collect();
+    if opts.algorithms.iter().any(|a| a.name() == "calibrated") {
+        let missing = corpus.without_profile();
+        anyhow::ensure!(
+            missing == 0,
+            "calibrated needs a \"profile\" on every logged line; {missing} of {} lines have none (drop calibrated from --algorithms, or log profiles)",
+            corpus.len()
+        );
+    }
+    // Windows apply to the algorithms that take one; every algorithm runs unbounded too.
+    let windows_of = |a: &dyn Diversifier| -> Vec<Option<usize>> {
+        let mut w = vec![None];
+        if matches!(a.name(), "dpp" | "ssd") {
+            w.extend(opts.windows.iter().map(|&w| Some(w)));
+        }
+        w
+    };
+    let cells: Vec<(&'static dyn Diversifier, Option<usize>, f64)> = opts
+        .algorithms
+        .iter()
+        .flat_map(|&a| {
+            windows_of(a).into_iter().flat_map(move |w| opts.lambdas.iter().map(move |&l| (a, w, l)))
+        })
+        .collect();
     let bar = indicatif::ProgressBar::new(cells.len() as u64);
     bar.set_style(
         indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} cells, {elapsed} elapsed, {eta} left")
             .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
     let mut points = Vec::with_capacity(cells.len());
-    for (algorithm, lambda) in cells {
-        points.push(evaluate(corpus, algorithm, lambda, opts.k).map_err(anyhow::Error::msg)?);
+    for (algorithm, window, lambda) in cells {
+        points.push(evaluate_window(corpus, algorithm, lambda, opts.k, window).map_err(anyhow::Error::msg)?);
         bar.inc(1);
     }
     bar.finish_and_clear();
@@ -68,10 +91,11 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     let mut csv = String::from(CSV_HEADER);
     csv.push('\n');
     // The baseline row first, labelled as such, then every cell.
-    let rows: Vec<(&str, &Point)> =
-        std::iter::once(("baseline", &baseline)).chain(points.iter().map(|p| (p.algorithm, p))).collect();
-    for &(label, p) in &rows {
-        csv.push_str(&csv_row(label, p));
+    let rows: Vec<(String, &Point)> = std::iter::once(("baseline".to_owned(), &baseline))
+        .chain(points.iter().map(|p| (p.label(), p)))
+        .collect();
+    for (_, p) in &rows {
+        csv.push_str(&csv_row(if std::ptr::eq(*p, &baseline) { "baseline" } else { p.algorithm }, p));
         csv.push('\n');
     }
     let csv_path = opts.out.join("frontier.csv");
@@ -85,7 +109,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     let _ = writeln!(report, "{} slates, {} items offered, k = {k}", corpus.len(), corpus.items);
     let _ = writeln!(
         report,
-        "{:<10} {:>6} {:>9} {:>8} {:>16} {:>14} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
+        "{:<12} {:>6} {:>9} {:>8} {:>16} {:>14} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
         "algorithm",
         "lambda",
         "recall@k",
@@ -99,10 +123,10 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
         "coverage",
         "gini"
     );
-    for &(label, p) in &rows {
+    for (label, p) in &rows {
         let _ = writeln!(
             report,
-            "{:<10} {:>6.2} {:>9.4} {:>8.4} {:>16.4} {:>14.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
+            "{:<12} {:>6.2} {:>9.4} {:>8.4} {:>16.4} {:>14.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
             label,
             p.lambda,
             p.recall,
@@ -133,7 +157,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
                 Some(p) => {
                     let _ = writeln!(
                         report,
-                        "  {name:<10} lambda = {:<5} {} {:.4}, entropy {:.3} bits",
+                        "  {name:<12} lambda = {:<5} {} {:.4}, entropy {:.3} bits",
                         p.lambda,
                         rule.metric,
                         p.metric(rule.metric),
@@ -141,7 +165,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
                     );
                 }
                 None => {
-                    let _ = writeln!(report, "  {name:<10} no lambda keeps the bound");
+                    let _ = writeln!(report, "  {name:<12} no lambda keeps the bound");
                 }
             }
         }
@@ -149,8 +173,10 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
         if let Some(p) = overall {
             let _ = writeln!(
                 report,
-                "\n# a slice serving the most diverse of these (edit the name):\n[slices.SLICE]\nalgorithm = \"{}\"\nlambda = {}\nk = {k}",
-                p.algorithm, p.lambda
+                "\n# a slice serving the most diverse of these (edit the name):\n[slices.SLICE]\nalgorithm = \"{}\"\nlambda = {}\nk = {k}{}",
+                p.algorithm,
+                p.lambda,
+                p.window.map_or_else(String::new, |w| format!("\nwindow = {w}"))
             );
         }
     }

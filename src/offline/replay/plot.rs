@@ -9,14 +9,18 @@ use plotters::prelude::*;
 
 use super::frontier::Point;
 
-/// Colours for up to six algorithms, then repeated.
-const COLOURS: [RGBColor; 6] = [
+/// Colours for up to ten lines (algorithms, and their windows), then repeated.
+const COLOURS: [RGBColor; 10] = [
     RGBColor(31, 119, 180),
     RGBColor(214, 39, 40),
     RGBColor(44, 160, 44),
     RGBColor(148, 103, 189),
     RGBColor(255, 127, 14),
     RGBColor(23, 190, 207),
+    RGBColor(140, 86, 75),
+    RGBColor(227, 119, 194),
+    RGBColor(127, 127, 127),
+    RGBColor(188, 189, 34),
 ];
 
 /// Renders the frontier as an SVG document.
@@ -54,15 +58,15 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
             .y_desc(format!("nDCG@{k}"))
             .draw()
             .map_err(|e| e.to_string())?;
-        let mut names: Vec<&str> = Vec::new();
+        let mut names: Vec<String> = Vec::new();
         for p in points {
-            if !names.contains(&p.algorithm) {
-                names.push(p.algorithm);
+            if !names.contains(&p.label()) {
+                names.push(p.label());
             }
         }
         for (c, name) in names.iter().enumerate() {
             let colour = COLOURS[c % COLOURS.len()];
-            let mut line: Vec<&Point> = points.iter().filter(|p| p.algorithm == *name).collect();
+            let mut line: Vec<&Point> = points.iter().filter(|p| p.label() == *name).collect();
             line.sort_by(|a, b| a.lambda.total_cmp(&b.lambda));
             chart
                 .draw_series(LineSeries::new(

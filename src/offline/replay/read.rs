@@ -49,6 +49,12 @@ impl Corpus {
         self.slates.len()
     }
 
+    /// Slates whose line carried no taste profile (calibration cannot replay them).
+    #[must_use]
+    pub fn without_profile(&self) -> usize {
+        self.slates.iter().filter(|s| s.input.profile().is_none()).count()
+    }
+
     /// True when no line was usable.
     #[must_use]
     pub fn is_empty(&self) -> bool {

@@ -28,7 +28,7 @@
 //! `d_i²` is kept, as in the unbounded kernel.
 //!
 //! # Complexity
-//! O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory
+//! O(N log N) once to order candidates by score, then O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory
 //! O(N·d) for the f64 rows and O(N·min(w, d)) for the coordinates when the window slides.
 //!
 //! # Invariants
@@ -129,14 +129,24 @@ fn run<S: Simd>(
     ws.coords.resize(n * stride, 0.0);
     ws.running.clear();
     ws.running.resize(n, 1.0);
+    ws.order.clear();
+    ws.order.extend(0..n);
+    ws.order.sort_unstable_by(|&a, &b| s[b].total_cmp(&s[a]).then(a.cmp(&b)));
     let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
     while sel.indices.len() < m {
         if ws.cancelled() {
             break;
         }
+        // Candidates in descending score order: a gain is at most `(1 − λ)·s_i` (ln d² ≤ 0) or
+        // `(1 − λ)·s_i + λ` (d ≤ 1), so the scan stops at the first whose bound falls below the
+        // best so far, and the logarithms of the rest are never taken.
+        let headroom = if gain == Gain::Volume { lambda } else { 0.0 };
         let mut best: Option<(f64, usize)> = None;
-        for i in 0..n {
+        for &i in &ws.order {
+            if best.is_some_and(|(b, _)| (1.0 - lambda) * s[i] + headroom < b) {
+                break;
+            }
             if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
                 continue;
             }
@@ -149,8 +159,13 @@ fn run<S: Simd>(
                 Gain::Volume if d2 < EPSILON => (1.0 - lambda) * s[i],
                 Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
             };
-            // Strictly greater: among equal values the lower index, met first, stays.
-            if best.is_none_or(|(b, _)| value > b) {
+            // Ties go to the lower index, whatever the scan order.
+            let better = |(b, bi): (f64, usize)| match value.partial_cmp(&b) {
+                Some(std::cmp::Ordering::Greater) => true,
+                Some(std::cmp::Ordering::Equal) => i < bi,
+                _ => false,
+            };
+            if best.is_none_or(better) {
                 best = Some((value, i));
             }
         }
