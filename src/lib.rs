@@ -2,7 +2,8 @@
 //!
 //! # Layout
 //! The numeric core is its own crate, `medley-core` (validated slates, kernels, measures, replay
-//! metrics), re-exported here as [`model`], [`diversify`], [`measures`] and [`evaluate`]. This
+//! metrics, the fairness floor), re-exported here as [`model`], [`diversify`], [`measures`],
+//! [`evaluate`] and [`fairness`]. This
 //! crate is the service and its tools, one folder per layer, each importing only the layers
 //! below it (`medley-core` < [`api`] < [`serve`] < [`http`], [`offline`]):
 //! - [`api`]: the wire contract every front end shares: JSON request and response types, their
@@ -37,7 +38,7 @@ pub mod http;
 pub mod offline;
 pub mod serve;
 
-pub use medley_core::{diversify, evaluate, measures, model};
+pub use medley_core::{diversify, evaluate, fairness, measures, model};
 pub use medley_core::{
     CandidateInput, Diversifier, KernelError, Limits, Params, RerankInput, ScoreTransform, Selection,
     ValidationError, Workspace,

@@ -156,6 +156,45 @@ proptest! {
         prop_assert_eq!(run(&Dpp, &input, &wide), run(&Dpp, &input, &p));
     }
 
+    /// Issue 17, fairness floor (Zehlike et al. 2017): with `relevance` it is FA*IR exactly; with
+    /// every other algorithm the choice at a restricted step is the algorithm's own among the
+    /// protected (each equals its brute force that restricts the same steps); every prefix holds
+    /// m(t) protected items whenever enough exist, and the shortfall flag says when not.
+    #[test]
+    fn fairness_floor_holds_for_every_algorithm((cands, k, lambda) in arb_slate(), every in 2usize..6, share in 0.2..0.9f64, alpha in 0.02..0.5f64, window in 2usize..6) {
+        let n = cands.len();
+        let protected: Vec<bool> = (0..n).map(|i| i % every == 0).collect();
+        let input = slate(cands).with_fairness(protected.clone(), share, alpha).unwrap();
+        let p = params(k, lambda);
+        let m = k.min(n);
+        let minimums = medley::fairness::minimum_protected(m, share, alpha);
+        let total = protected.iter().filter(|&&x| x).count();
+        for algo in ALL {
+            let out = run(algo, &input, &p);
+            assert_valid(&out, n, k, algo.name());
+            let mut held = 0;
+            for (t, &i) in out.iter().enumerate() {
+                held += usize::from(protected[i]);
+                // Short only when every protected candidate is already in the prefix.
+                prop_assert!(held >= minimums[t] || held == total, "{} t={} held {} < m {}", algo.name(), t + 1, held, minimums[t]);
+            }
+            let short = medley::fairness::shortfall(&input, &out).unwrap();
+            prop_assert_eq!(short, minimums.iter().max().copied().unwrap_or(0) > total || out.iter().enumerate().any(|(t, _)| {
+                out[..=t].iter().filter(|&&i| protected[i]).count() < minimums[t]
+            }));
+        }
+        prop_assert_eq!(run(&Relevance, &input, &p), reference::fair_relevance(&input, &p));
+        prop_assert_eq!(run(&Calibrated, &input, &p), reference::calibrated(&input, &p));
+        prop_assert_eq!(run(&Dpp, &input, &p), reference::dpp_eager(&input, &p));
+        prop_assert_eq!(run(&Ssd, &input, &p), reference::ssd(&input, &p));
+        let w = p.with_window(Some(window as u64)).unwrap();
+        prop_assert_eq!(run(&Dpp, &input, &w), reference::dpp_window(&input, &w, window));
+        if lambda > 0.0 {
+            // MMR's brute force takes the same f64 cosines as its fair (eager) loop.
+            prop_assert_eq!(run(&Mmr, &input, &p), reference::mmr(&input, &p));
+        }
+    }
+
     #[test]
     fn quota_at_lambda_one_balances_and_keeps_score_order_within_a_category((cands, k, _l) in arb_slate()) {
         let input = slate(cands);

@@ -188,3 +188,17 @@ fn windowed_dpp_ssd_and_calibration_match_numpy_and_scipy() {
         assert!((got - case["kl"].as_f64().unwrap()).abs() < 1e-12, "{counts:?}: {got}");
     }
 }
+
+/// Issue 17: the fairness floor's m(t) for t = 1..300 at five (p, α) equals the smallest m with
+/// `scipy.stats.binom.cdf(m, t, p) > α` (make_fixtures.py); the issue's p = 0.5, α = 0.1 row
+/// starts 0 0 0 1 1 1 2 2 3 3 3 4.
+#[test]
+fn fairness_minimums_match_scipy_binom() {
+    let fx = fixtures();
+    for case in fx["fairness_minimums"].as_array().unwrap() {
+        let (p, a) = (case["share"].as_f64().unwrap(), case["alpha"].as_f64().unwrap());
+        let want: Vec<usize> =
+            case["minimums"].as_array().unwrap().iter().map(|m| m.as_u64().unwrap() as usize).collect();
+        assert_eq!(medley::fairness::minimum_protected(want.len(), p, a), want, "p = {p}, alpha = {a}");
+    }
+}

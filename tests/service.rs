@@ -844,3 +844,138 @@ profile = { "cat-0" = 5.0, "cat-1" = 3.0, "cat-2" = 2.0 }
     assert!(count >= 3.0, "medley_miscalibration_count {count}");
     server.stop().await;
 }
+
+/// Issue 17, the fairness floor over HTTP: every algorithm holds m(t) protected items in every
+/// prefix (FA*IR with relevance, checked against the brute force), the answer reports the
+/// protected share, a floor that cannot be met says `fairness_shortfall` and is counted, slices
+/// carry a default floor, and bad floors are refused with their path.
+#[tokio::test]
+async fn the_fairness_floor_holds_over_http_for_every_algorithm() {
+    const CONFIG: &str = r#"
+[slices.default]
+algorithm = "dpp"
+lambda = 0.3
+k = 10
+
+[slices.makers]
+algorithm = "mmr"
+lambda = 0.5
+k = 8
+fairness = { protected = "small-maker", share = 0.4, alpha = 0.1 }
+"#;
+    let server = Server::start(CONFIG).await;
+    let client = reqwest::Client::new();
+    let response_schema = schema("RerankResponse");
+    let mut rng = Rng(23);
+    let mut base = request(&mut rng, 40, 6, 3);
+    // Small makers are few and score low: relevance alone would leave them out.
+    for (i, c) in base["candidates"].as_array_mut().unwrap().iter_mut().enumerate() {
+        let small = i % 5 == 0;
+        c["group"] = json!(if small { "small-maker" } else { "brand" });
+        if small {
+            c["score"] = json!(c["score"].as_f64().unwrap() * 0.3);
+        }
+    }
+    let protected: Vec<bool> = (0..40).map(|i| i % 5 == 0).collect();
+    let minimums = medley::fairness::minimum_protected(12, 0.5, 0.1);
+    for algorithm in ["relevance", "mmr", "dpp", "quota", "ssd", "calibrated"] {
+        let mut body = base.clone();
+        body["algorithm"] = json!(algorithm);
+        body["lambda"] = json!(0.5);
+        body["k"] = json!(12);
+        body["profile"] = json!({"cat-0": 1.0, "cat-1": 1.0});
+        body["fairness"] = json!({"protected": "small-maker", "share": 0.5, "alpha": 0.1});
+        let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+        assert_eq!(status, 200, "{algorithm}: {r}");
+        assert_valid(&response_schema, &r);
+        let picked: Vec<usize> = r["items"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|it| it["id"].as_str().unwrap().trim_start_matches("item-").parse().unwrap())
+            .collect();
+        let mut held = 0;
+        for (t, &i) in picked.iter().enumerate() {
+            held += usize::from(protected[i]);
+            assert!(held >= minimums[t], "{algorithm}: prefix {} holds {held} < {}", t + 1, minimums[t]);
+        }
+        assert!(r.get("fairness_shortfall").is_none(), "{algorithm}: eight protected candidates suffice");
+        let share = r["diversity"]["protected_share"].as_f64().unwrap();
+        assert!((share - held as f64 / 12.0).abs() < 1e-12);
+        if algorithm == "relevance" {
+            let cands: Vec<medley::CandidateInput> = base["candidates"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|c| medley::CandidateInput {
+                    id: c["id"].as_str().unwrap().into(),
+                    score: c["score"].as_f64().unwrap(),
+                    category: None,
+                    embedding: None,
+                })
+                .collect();
+            let input = medley::RerankInput::new(
+                cands,
+                medley::ScoreTransform::MinMax,
+                false,
+                &medley::Limits::default(),
+            )
+            .unwrap()
+            .with_fairness(protected.clone(), 0.5, 0.1)
+            .unwrap();
+            let p = medley::Params::new(12, 0.5, &medley::Limits::default()).unwrap();
+            assert_eq!(picked, medley::diversify::reference::fair_relevance(&input, &p), "FA*IR");
+        }
+    }
+    // Too few protected candidates: met as far as possible, and said.
+    let mut body = base.clone();
+    body["k"] = json!(30);
+    body["fairness"] = json!({"protected": "small-maker", "share": 0.9, "alpha": 0.1});
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!((status, r["fairness_shortfall"].as_bool()), (200, Some(true)), "{r}");
+    // Every prefix still holds min(m(t), 8) of the 8 small makers.
+    let strict = medley::fairness::minimum_protected(30, 0.9, 0.1);
+    let mut held = 0;
+    for (t, it) in r["items"].as_array().unwrap().iter().enumerate() {
+        held += usize::from(
+            it["id"].as_str().unwrap().trim_start_matches("item-").parse::<usize>().unwrap() % 5 == 0,
+        );
+        assert!(held >= strict[t].min(8), "prefix {} holds {held}", t + 1);
+    }
+    assert_eq!(held, 8);
+    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
+    assert!(text.contains("medley_fairness_shortfall_total{slice=\"default\"} 1"), "{text}");
+    // A slice's default floor.
+    let (status, r) = post_json(
+        &client,
+        &server.url("/v1/rerank"),
+        &json!({"slice": "makers", "candidates": base["candidates"]}),
+    )
+    .await;
+    assert_eq!(status, 200, "{r}");
+    let need = medley::fairness::minimum_protected(8, 0.4, 0.1)[7];
+    assert!(need >= 1 && r["diversity"]["protected_share"].as_f64().unwrap() >= need as f64 / 8.0, "{r}");
+    // Refusals.
+    for (fairness, path) in [
+        (json!({"protected": "small-maker", "share": 1.0, "alpha": 0.1}), "fairness.share"),
+        (json!({"protected": "small-maker", "share": 0.5, "alpha": 0.0}), "fairness.alpha"),
+    ] {
+        let mut body = base.clone();
+        body["fairness"] = fairness;
+        let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+        assert_eq!(
+            (status, r["error"]["code"].as_str(), r["error"]["path"].as_str()),
+            (422, Some("invalid_fairness"), Some(path)),
+            "{r}"
+        );
+    }
+    let mut body = base.clone();
+    body["fairness"] = json!({"protected": "small-maker", "share": 0.5});
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!((status, r["error"]["code"].as_str()), (400, Some("invalid_field")), "{r}");
+    let mut body = base.clone();
+    body["candidates"][3]["group"] = json!("g".repeat(1025));
+    let (status, r) = post_json(&client, &server.url("/v1/rerank"), &body).await;
+    assert_eq!((status, r["error"]["path"].as_str()), (422, Some("candidates[3].group")), "{r}");
+    server.stop().await;
+}

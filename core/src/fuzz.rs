@@ -78,6 +78,17 @@ pub fn diversifiers(bytes: &[u8]) {
         // Weights that sum to 0 are refused; that input is then served without a profile.
         Some(weights) => input.clone().with_profile(weights).unwrap_or(input),
     };
+    // A fairness floor over every third candidate on half the inputs; every algorithm must then
+    // keep each prefix at m(t) protected items while any remain.
+    let floor =
+        (b.u8() % 2 == 0).then(|| (f64::from(1 + b.u8() % 9) / 10.0, f64::from(1 + b.u8() % 4) / 10.0));
+    let input = match floor {
+        None => input,
+        Some((share, alpha)) => {
+            let protected = (0..input.len()).map(|i| i % 3 == 0).collect();
+            input.with_fairness(protected, share, alpha).expect("share and alpha inside (0, 1)")
+        }
+    };
     let relevance_at_zero = {
         let zero = Params::new(k, 0.0, &limits).expect("k was accepted").with_max_per_category(cap);
         diversify::Relevance
@@ -100,6 +111,22 @@ pub fn diversifiers(bytes: &[u8]) {
             expected_len(&input, params.k(), params.max_per_category()),
             "{name}: length"
         );
+        if let Some(floor) = input.fairness() {
+            // Caps can keep protected candidates out, so the floor is checked without one.
+            if cap.is_none() {
+                let minimums = floor.minimums(first.indices.len());
+                let total = floor.protected().iter().filter(|&&p| p).count();
+                let mut held = 0;
+                for (t, &i) in first.indices.iter().enumerate() {
+                    held += usize::from(floor.protected()[i]);
+                    assert!(
+                        held >= minimums[t] || held == total,
+                        "{name}: prefix {} breaks the fairness floor",
+                        t + 1
+                    );
+                }
+            }
+        }
         let again = algo.select(&input, &params, &mut Workspace::new()).expect("it ran once");
         assert_eq!(first.indices, again.indices, "{name}: not deterministic");
         if params.lambda() == 0.0 {

@@ -11,6 +11,8 @@
 //! - [`measures`]: category entropy, intra-list distance, coverage, Gini, and how two slates of
 //!   one request differ (overlap, rank-biased overlap).
 //! - [`evaluate`]: the replay metrics: nDCG@k and recall@k, standard and candidate-restricted.
+//! - [`fairness`]: the ranked group fairness floor (FA*IR's `m(t)` table) every diversifier
+//!   respects when a slate carries one.
 //! - [`fuzz`]: the invariant checks the `diversify` fuzz target drives.
 //!
 //! # One call
@@ -48,6 +50,7 @@
 
 pub mod diversify;
 pub mod evaluate;
+pub mod fairness;
 pub mod fuzz;
 pub mod measures;
 pub mod model;

@@ -198,6 +198,14 @@ pub enum ValidationError {
         /// The limit.
         max: usize,
     },
+    /// A fairness `share` or `alpha` outside the open interval (0, 1).
+    #[error("fairness {}: {got} is outside the open interval (0, 1)", field.name())]
+    InvalidFairness {
+        /// Which one.
+        field: FairnessField,
+        /// The value sent.
+        got: f64,
+    },
     /// A profile weight that is negative or not finite, or weights that sum to 0.
     #[error("profile {}: {reason}", category.as_deref().map_or_else(|| "weights".to_owned(), |c| format!("weight of {c:?}")))]
     InvalidProfile {
@@ -206,6 +214,26 @@ pub enum ValidationError {
         /// What is wrong.
         reason: &'static str,
     },
+}
+
+/// Why a fairness floor was refused.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum FairnessField {
+    /// `share`, outside (0, 1).
+    Share,
+    /// `alpha`, outside (0, 1).
+    Alpha,
+}
+
+impl FairnessField {
+    /// The wire name of the field.
+    #[must_use]
+    pub fn name(self) -> &'static str {
+        match self {
+            Self::Share => "share",
+            Self::Alpha => "alpha",
+        }
+    }
 }
 
 /// Largest `window` accepted ([`Params::with_window`]).
@@ -312,6 +340,7 @@ pub struct RerankInput {
     group_names: Vec<Option<String>>,
     embeddings: Option<Embeddings>,
     profile: Option<Profile>,
+    fairness: Option<crate::fairness::FairnessFloor>,
 }
 
 impl RerankInput {
@@ -449,6 +478,7 @@ impl RerankInput {
             group_names,
             embeddings,
             profile: None,
+            fairness: None,
         })
     }
 
@@ -567,6 +597,39 @@ impl RerankInput {
         absent.sort_by(|a, b| a.0.cmp(&b.0));
         self.profile = Some(Profile { by_group, absent: absent.into_iter().map(|(_, p)| p).collect() });
         Ok(self)
+    }
+
+    /// Attaches a fairness floor (Zehlike et al. 2017): `protected[i]` says whether candidate i
+    /// belongs to the protected group; every prefix of the slate must hold the share `share` of
+    /// them at significance `alpha` ([`crate::fairness`]).
+    ///
+    /// # Errors
+    /// [`ValidationError::InvalidFairness`] when `share` or `alpha` is outside (0, 1).
+    ///
+    /// # Panics
+    /// If `protected` does not have one entry per candidate (a caller bug).
+    pub fn with_fairness(
+        mut self,
+        protected: Vec<bool>,
+        share: f64,
+        alpha: f64,
+    ) -> Result<Self, ValidationError> {
+        assert_eq!(protected.len(), self.len(), "one protected flag per candidate");
+        let open = |x: f64| x > 0.0 && x < 1.0;
+        if !open(share) {
+            return Err(ValidationError::InvalidFairness { field: FairnessField::Share, got: share });
+        }
+        if !open(alpha) {
+            return Err(ValidationError::InvalidFairness { field: FairnessField::Alpha, got: alpha });
+        }
+        self.fairness = Some(crate::fairness::FairnessFloor { protected, share, alpha });
+        Ok(self)
+    }
+
+    /// The fairness floor, when one was attached.
+    #[must_use]
+    pub fn fairness(&self) -> Option<&crate::fairness::FairnessFloor> {
+        self.fairness.as_ref()
     }
 
     /// The taste profile, when one was attached.

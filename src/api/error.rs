@@ -33,6 +33,14 @@ pub enum RequestError {
         /// The limit.
         max: usize,
     },
+    /// A candidate's `group` longer than 1024 bytes.
+    #[error("candidate {index} has a group of {got} bytes; the limit is 1024")]
+    GroupTooLong {
+        /// Candidate index.
+        index: usize,
+        /// Its length in bytes.
+        got: usize,
+    },
     /// No slice of that name is configured.
     #[error("unknown slice {name:?}; configured slices: {known}")]
     UnknownSlice {
@@ -99,7 +107,7 @@ impl RequestError {
         match self {
             Self::MalformedJson { .. } => "malformed_json",
             Self::InvalidField { .. } => "invalid_field",
-            Self::LabelTooLong { .. } => "too_long",
+            Self::LabelTooLong { .. } | Self::GroupTooLong { .. } => "too_long",
             Self::UnknownSlice { .. } => "unknown_slice",
             Self::SliceLocked { .. } => "slice_locked",
             Self::UnknownAlgorithm { .. } => "unknown_algorithm",
@@ -118,6 +126,7 @@ impl RequestError {
                 ValidationError::LambdaOutOfRange { .. } => "lambda_out_of_range",
                 ValidationError::WindowOutOfRange { .. } => "window_out_of_range",
                 ValidationError::InvalidProfile { .. } => "invalid_profile",
+                ValidationError::InvalidFairness { .. } => "invalid_fairness",
             },
             Self::MissingProfile { .. } => "missing_profile",
             Self::Kernel(_) => "internal",
@@ -134,6 +143,7 @@ impl RequestError {
             Self::MalformedJson { .. } | Self::Kernel(_) => None,
             Self::InvalidField { path, .. } => path.clone(),
             Self::LabelTooLong { field, .. } => Some((*field).into()),
+            Self::GroupTooLong { index, .. } => Some(format!("candidates[{index}].group")),
             Self::UnknownSlice { .. } => Some("slice".into()),
             Self::SliceLocked { field, .. } => Some((*field).into()),
             Self::UnknownAlgorithm { .. } => Some("algorithm".into()),
@@ -158,6 +168,7 @@ impl RequestError {
                 ValidationError::WindowOutOfRange { .. } => Some("window".into()),
                 ValidationError::InvalidProfile { category: Some(ref c), .. } => Some(format!("profile.{c}")),
                 ValidationError::InvalidProfile { category: None, .. } => Some("profile".into()),
+                ValidationError::InvalidFairness { field, .. } => Some(format!("fairness.{}", field.name())),
             },
             Self::MissingProfile { .. } => Some("profile".into()),
         }

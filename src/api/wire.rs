@@ -40,6 +40,9 @@ pub struct RerankRequest {
     /// by `calibrated`; with any algorithm it adds `diversity.miscalibration` to the answer.
     #[serde(default)]
     pub profile: Option<std::collections::BTreeMap<String, f64>>,
+    /// A fairness floor over the candidates' `group` (Zehlike et al. 2017).
+    #[serde(default)]
+    pub fairness: Option<WireFairness>,
     /// The scored candidates, each a JSON object.
     #[serde(deserialize_with = "objects")]
     pub candidates: Vec<WireCandidate>,
@@ -87,6 +90,22 @@ pub struct WireCandidate {
     /// Embedding as standard base64 of little-endian f32 values.
     #[serde(default)]
     pub embedding_b64: Option<String>,
+    /// The provider group a fairness floor counts (`fairness.protected` names one).
+    #[serde(default)]
+    pub group: Option<String>,
+}
+
+/// `fairness`: every prefix of the slate holds at least the share `share` of candidates whose
+/// `group` is `protected`, tested at significance `alpha`.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct WireFairness {
+    /// The protected group's name.
+    pub protected: String,
+    /// Target share, in (0, 1).
+    pub share: f64,
+    /// Significance of each prefix's test, in (0, 1).
+    pub alpha: f64,
 }
 
 /// The response to one request.
@@ -109,6 +128,10 @@ pub struct RerankResponse {
     pub k: u64,
     /// The slate, in order.
     pub items: Vec<Item>,
+    /// True when the fairness floor could not be met at some prefix (too few protected
+    /// candidates); absent otherwise.
+    #[serde(skip_serializing_if = "std::ops::Not::not")]
+    pub fairness_shortfall: bool,
     /// How diverse the slate is.
     pub diversity: Diversity,
 }
@@ -138,6 +161,9 @@ pub struct Diversity {
     /// in nats; absent without a profile.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub miscalibration: Option<f64>,
+    /// Share of protected items in the slate, when the request has a fairness floor.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub protected_share: Option<f64>,
 }
 
 /// Every non-2xx body: `{"error": {...}}`, plus `"line"` on stream and batch lines.

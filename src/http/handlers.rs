@@ -42,6 +42,7 @@ struct Served {
     entropy: f64,
     ild: Option<f64>,
     miscalibration: Option<f64>,
+    fairness_shortfall: bool,
     request_id: Option<String>,
 }
 
@@ -64,6 +65,7 @@ fn serve_prepared(
         entropy: response.diversity.category_entropy_bits,
         ild: response.diversity.intra_list_distance,
         miscalibration: response.diversity.miscalibration,
+        fairness_shortfall: response.fairness_shortfall,
         request_id: response.request_id,
     };
     // The answer is built; the shadow gets the validated slate and the primary picks by move.
@@ -113,6 +115,9 @@ async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Resul
         served.ild,
         served.miscalibration,
     );
+    if served.fairness_shortfall {
+        state.metrics.fairness_shortfall.with_label_values(&[&served.slice]).inc();
+    }
     Ok(served)
 }
 

@@ -78,6 +78,7 @@ impl Engine {
                 ("k", request.k.is_some()),
                 ("window", request.window.is_some()),
                 ("profile", request.profile.is_some()),
+                ("fairness", request.fairness.is_some()),
             ];
             if let Some(&(field, _)) = overrides.iter().find(|(_, set)| *set) {
                 return Err(RequestError::SliceLocked { slice: slice.name.to_string(), field });
@@ -113,10 +114,27 @@ impl Engine {
             };
             return Err(RequestError::Invalid { error, b64: false });
         }
+        let fairness = request.fairness.or_else(|| slice.fairness.clone());
+        if let Some(f) = &fairness {
+            if f.protected.len() > MAX_LABEL_BYTES {
+                return Err(RequestError::LabelTooLong {
+                    field: "fairness.protected",
+                    got: f.protected.len(),
+                    max: MAX_LABEL_BYTES,
+                });
+            }
+        }
+        let mut protected = Vec::with_capacity(if fairness.is_some() { request.candidates.len() } else { 0 });
         let mut b64 = Vec::with_capacity(request.candidates.len());
         let mut candidates = Vec::with_capacity(request.candidates.len());
         for (index, c) in request.candidates.into_iter().enumerate() {
             b64.push(c.embedding_b64.is_some());
+            if let Some(got) = c.group.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
+                return Err(RequestError::GroupTooLong { index, got });
+            }
+            if let Some(f) = &fairness {
+                protected.push(c.group.as_deref() == Some(f.protected.as_str()));
+            }
             let embedding = match (c.embedding, c.embedding_b64) {
                 (Some(_), Some(_)) => return Err(RequestError::ConflictingEmbedding { index }),
                 (Some(e), None) => Some(e),
@@ -140,6 +158,12 @@ impl Engine {
             Some(weights) => {
                 input.with_profile(weights).map_err(|error| RequestError::Invalid { error, b64: false })?
             }
+        };
+        let input = match fairness {
+            None => input,
+            Some(f) => input
+                .with_fairness(protected, f.share, f.alpha)
+                .map_err(|error| RequestError::Invalid { error, b64: false })?,
         };
         // Likewise a shadow that calibrates needs a profile.
         let shadow = shadow.filter(|sh| !sh.algorithm.needs_embeddings() || input.embeddings().is_some());
@@ -247,6 +271,7 @@ impl Reranked {
             distinct_categories: measures::distinct_categories(input, slate),
             intra_list_distance: measures::intra_list_distance(input, slate),
             miscalibration: measures::miscalibration(input, slate),
+            protected_share: medley_core::fairness::protected_share(input, slate),
         }
     }
 
@@ -273,6 +298,8 @@ impl Reranked {
             lambda: p.params.lambda(),
             k: p.k,
             items,
+            fairness_shortfall: medley_core::fairness::shortfall(&p.input, &self.selection.indices)
+                .unwrap_or(false),
             diversity: self.diversity(),
         }
     }

@@ -33,6 +33,8 @@ pub struct Metrics {
     pub entropy: HistogramVec,
     /// `medley_last_category_entropy{slice, algorithm}`: entropy of the latest slate.
     pub last_entropy: GaugeVec,
+    /// `medley_fairness_shortfall_total{slice}`: slates whose fairness floor could not be met.
+    pub fairness_shortfall: IntCounterVec,
     /// `medley_miscalibration{slice, arm, algorithm}`: KL of each profiled slate, nats.
     pub miscalibration: HistogramVec,
     /// `medley_last_intra_list_distance{slice, algorithm}`: ILD of the latest slate with embeddings.
@@ -194,6 +196,11 @@ impl Metrics {
             "Reloads that found the configuration already serving (nothing swapped), by trigger.",
             "trigger",
         );
+        let fairness_shortfall = counter(
+            "medley_fairness_shortfall_total",
+            "Served slates whose fairness floor could not be met (too few protected candidates).",
+            "slice",
+        );
         let shadow_runs = counter("medley_shadow_runs_total", "Shadow runs completed.", "slice");
         let shadow_dropped = counter(
             "medley_shadow_dropped_total",
@@ -258,6 +265,7 @@ impl Metrics {
         reg(Box::new(config_reloads.clone()));
         reg(Box::new(config_reload_failures.clone()));
         reg(Box::new(config_reload_unchanged.clone()));
+        reg(Box::new(fairness_shortfall.clone()));
         reg(Box::new(shadow_runs.clone()));
         reg(Box::new(shadow_dropped.clone()));
         reg(Box::new(shadow_duration.clone()));
@@ -287,6 +295,7 @@ impl Metrics {
             config_reloads,
             config_reload_failures,
             config_reload_unchanged,
+            fairness_shortfall,
             shadow_runs,
             shadow_dropped,
             shadow_duration,

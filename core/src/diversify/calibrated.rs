@@ -1,4 +1,4 @@
-use super::{allowed, relevance_selection, take, Diversifier, KernelError, Workspace};
+use super::{eligible, relevance_selection, take, Diversifier, KernelError, Workspace};
 use crate::measures::CALIBRATION_ALPHA;
 use crate::model::{Params, RerankInput, Selection};
 
@@ -60,7 +60,7 @@ impl Diversifier for Calibrated {
         let m = params.k().min(n);
         let s = input.normalized();
         let p = profile.by_group();
-        ws.reset(n, groups);
+        ws.reset_for(input, m);
         // The profile's own groups; the others only share the denominator.
         let weighted: Vec<usize> = (0..groups).filter(|&g| p[g] > 0.0).collect();
         // Σ p·ln p over the whole profile, absent categories included: KL = that − Σ p·ln q̃.
@@ -87,14 +87,21 @@ impl Diversifier for Calibrated {
                 };
                 kl_if[g] = p_ln_p - with_g - absent;
             }
+            // Protected candidates only where the fairness floor needs one, and while any remain.
+            let restrict = ws.must_protect(sel.indices.len());
             let mut best: Option<(f64, usize)> = None;
-            for i in 0..n {
-                if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
-                    continue;
+            for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+                for i in 0..n {
+                    if !eligible(input, params, ws, i, r) {
+                        continue;
+                    }
+                    let value = (1.0 - lambda) * s[i] - lambda * kl_if[input.groups()[i] as usize];
+                    if best.is_none_or(|(b, _)| value > b) {
+                        best = Some((value, i));
+                    }
                 }
-                let value = (1.0 - lambda) * s[i] - lambda * kl_if[input.groups()[i] as usize];
-                if best.is_none_or(|(b, _)| value > b) {
-                    best = Some((value, i));
+                if best.is_some() {
+                    break;
                 }
             }
             let Some((value, i)) = best else { break };

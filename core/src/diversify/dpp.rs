@@ -123,6 +123,14 @@ impl Dpp {
         }
         // A window that slides before the last pick is its own kernel; one that never does
         // changes nothing, so the unbounded kernels keep their exact picks.
+        // A fairness floor restricts some steps to protected candidates, which the lazy and
+        // screened strategies (whose bounds assume a fixed candidate set) cannot follow: the
+        // eager loop of the windowed kernel, with no window, computes the same objective.
+        if input.fairness().is_some() {
+            let sel = window::select(input, params, ws, params.window(), window::Gain::LogDet);
+            ws.check_cancelled()?;
+            return Ok(sel);
+        }
         if let Some(w) = params.window() {
             if w.saturating_sub(1) < params.k().min(input.len()).saturating_sub(1) {
                 let sel = window::select(input, params, ws, Some(w), window::Gain::LogDet);

@@ -1,7 +1,7 @@
 //! `mmr`: Maximal Marginal Relevance with a running max-similarity per candidate.
 
 use super::similarity::row_dots_f32;
-use super::{allowed, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
+use super::{allowed, eligible, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
 use pulp::{Arch, Simd, WithSimd};
 use crate::model::{Params, RerankInput, Selection};
 
@@ -58,6 +58,11 @@ impl Diversifier for Mmr {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
+        if input.fairness().is_some() {
+            let sel = eager(input, params, ws);
+            ws.check_cancelled()?;
+            return Ok(sel);
+        }
         let n = input.len();
         let m = params.k().min(n);
         let s = input.normalized();
@@ -155,4 +160,49 @@ impl WithSimd for Refresh<'_> {
             *max_sim = max_sim.max(cos);
         }
     }
+}
+
+/// MMR without lazy bounds, for slates with a fairness floor: a step the floor restricts may
+/// pass over a candidate the lazy heap would have dropped for good. Every candidate's running
+/// max-similarity is brought up to date at every step (f64 cosines, O(N·d) per pick) and the
+/// objective taken over the eligible ones, ties to the lower index.
+fn eager(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection {
+    let emb = input.embeddings().expect("select checked for embeddings");
+    let (n, lambda) = (input.len(), params.lambda());
+    let m = params.k().min(n);
+    let s = input.normalized();
+    ws.reset_for(input, m);
+    ws.running.clear();
+    ws.running.resize(n, 0.0);
+    let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
+    while sel.indices.len() < m {
+        if ws.cancelled() {
+            break;
+        }
+        let restrict = ws.must_protect(sel.indices.len());
+        let mut best: Option<(f64, usize)> = None;
+        for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+            for i in 0..n {
+                if !eligible(input, params, ws, i, r) {
+                    continue;
+                }
+                let obj = (1.0 - lambda) * s[i] - lambda * ws.running[i];
+                if best.is_none_or(|(b, _)| obj > b) {
+                    best = Some((obj, i));
+                }
+            }
+            if best.is_some() {
+                break;
+            }
+        }
+        let Some((obj, j)) = best else { break };
+        take(input, ws, &mut sel, j, obj);
+        // The max over an empty slate is 0; from the first pick on it is the true maximum.
+        let first = sel.indices.len() == 1;
+        for i in 0..n {
+            let c = emb.cosine(i, j);
+            ws.running[i] = if first { c } else { ws.running[i].max(c) };
+        }
+    }
+    sel
 }

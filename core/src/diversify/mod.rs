@@ -128,6 +128,10 @@ pub struct Workspace {
     scratch: Vec<f64>,
     /// Windowed DPP and SSD: every candidate's coordinates in the window's basis, N × stride.
     coords: Vec<f64>,
+    /// Fairness floor: `m(t)` for each position of this call's slate (empty without a floor).
+    fair_min: Vec<usize>,
+    /// Fairness floor: protected items picked so far.
+    fair_held: usize,
     /// DPP (screened): panels, f32 bounds and the f32 basis.
     screen: dpp::ScreenBuffers,
     /// Items taken per group, for caps and quotas.
@@ -197,6 +201,24 @@ impl Workspace {
         self.taken.resize(n, false);
         self.group_taken.clear();
         self.group_taken.resize(groups, 0);
+        self.fair_min.clear();
+        self.fair_held = 0;
+    }
+
+    /// [`Workspace::reset`], plus the fairness floor of `input` for a slate of `m` items.
+    fn reset_for(&mut self, input: &RerankInput, m: usize) {
+        self.reset(input.len(), input.group_count());
+        if let Some(floor) = input.fairness() {
+            self.fair_min = floor.minimums(m);
+        }
+    }
+
+    /// Whether the pick after `picks` items must be protected: the prefix holds fewer than
+    /// `m(picks + 1)`. Kernels then restrict their choice to protected candidates, and choose
+    /// freely when none remains (the floor is met as far as possible).
+    #[inline]
+    fn must_protect(&self, picks: usize) -> bool {
+        self.fair_min.get(picks).is_some_and(|&need| self.fair_held < need)
     }
 }
 
@@ -298,23 +320,51 @@ fn fill_by_score(input: &RerankInput, params: &Params, ws: &mut Workspace, m: us
     ws.order = order;
 }
 
+/// Whether candidate `i` may be picked at a step restricted to protected candidates (`restrict`)
+/// or not: not taken, within its category cap, and protected when restricted.
+#[inline]
+fn eligible(input: &RerankInput, params: &Params, ws: &Workspace, i: usize, restrict: bool) -> bool {
+    !ws.taken[i]
+        && allowed(input, params, &ws.group_taken, i)
+        && (!restrict || input.fairness().is_some_and(|f| f.protected()[i]))
+}
+
 /// Records pick `i` with its deciding `gain`.
 #[inline]
 fn take(input: &RerankInput, ws: &mut Workspace, sel: &mut Selection, i: usize, gain: f64) {
     debug_assert!(!ws.taken[i], "candidate {i} picked twice");
+    if input.fairness().is_some_and(|f| f.protected()[i]) {
+        ws.fair_held += 1;
+    }
     ws.taken[i] = true;
     ws.group_taken[input.groups()[i] as usize] += 1;
     sel.indices.push(i);
     sel.gains.push(gain);
 }
 
-/// The relevance order under `params`: what every kernel returns at `lambda = 0`.
+/// The relevance order under `params`: what every kernel returns at `lambda = 0`. With a fairness
+/// floor this is FA*IR (Zehlike et al. 2017, Algorithm 2): the best remaining by score, or the
+/// best remaining protected one where the prefix needs it.
 fn relevance_selection(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection {
     let m = params.k().min(input.len());
-    ws.reset(input.len(), input.group_count());
+    ws.reset_for(input, m);
     let mut sel =
         Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
-    fill_by_score(input, params, ws, m, &mut sel);
+    if input.fairness().is_none() {
+        fill_by_score(input, params, ws, m, &mut sel);
+        return sel;
+    }
+    // O(N) per pick: fairness slates are short, and this keeps one obvious loop.
+    while sel.indices.len() < m {
+        let restrict = ws.must_protect(sel.indices.len());
+        let best = [restrict, false].into_iter().take(if restrict { 2 } else { 1 }).find_map(|r| {
+            (0..input.len())
+                .filter(|&i| eligible(input, params, ws, i, r))
+                .min_by(|&a, &b| by_score(input.scores(), a, b))
+        });
+        let Some(i) = best else { break };
+        take(input, ws, &mut sel, i, input.normalized()[i]);
+    }
     sel
 }
 

@@ -1,6 +1,8 @@
 //! `quota`: category interleaving toward a target share per category.
 
-use super::{allowed, by_score, relevance_prefix, relevance_selection, take, Diversifier, KernelError, Workspace};
+use super::{
+    allowed, by_score, eligible, relevance_prefix, relevance_selection, take, Diversifier, KernelError, Workspace,
+};
 use crate::model::{Params, RerankInput, Selection};
 
 /// Slack when comparing a category's count with its fractional quota.
@@ -52,7 +54,7 @@ impl Diversifier for Quota {
         let (n, groups) = (input.len(), input.group_count());
         let m = params.k().min(n);
         let scores = input.scores();
-        ws.reset(n, groups);
+        ws.reset_for(input, m);
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
         if m == 0 {
             return Ok(sel);
@@ -99,6 +101,20 @@ impl Diversifier for Quota {
         let mut head = start[..groups].to_vec();
 
         while sel.indices.len() < m {
+            // A step the fairness floor restricts takes the best protected candidate by score
+            // (quota's own order within a group); the queues then skip what it took.
+            if ws.must_protect(sel.indices.len()) {
+                let protected = (0..n).filter(|&i| eligible(input, params, ws, i, true)).min_by(|&a, &b| by_score(scores, a, b));
+                if let Some(i) = protected {
+                    take(input, ws, &mut sel, i, input.normalized()[i]);
+                    continue;
+                }
+            }
+            for g in 0..groups {
+                while head[g] < end[g] && ws.taken[order[head[g]]] {
+                    head[g] += 1;
+                }
+            }
             // Groups that can still contribute: items left and under the cap.
             let live = |g: usize, head: &[usize]| {
                 head[g] < end[g] && allowed(input, params, &ws.group_taken, order[head[g]])

@@ -37,14 +37,14 @@ pub fn relevance(input: &RerankInput, params: &Params) -> Vec<usize> {
 pub fn mmr(input: &RerankInput, params: &Params) -> Vec<usize> {
     let lambda = params.lambda();
     if lambda == 0.0 {
-        return relevance(input, params);
+        return fair_relevance(input, params);
     }
     let m = params.k().min(input.len());
     let s = input.normalized();
     let mut out: Vec<usize> = Vec::new();
     while out.len() < m {
         let mut best: Option<(usize, f64)> = None;
-        for i in (0..input.len()).filter(|i| !out.contains(i)) {
+        for i in choosable(input, &out, m) {
             let max_sim = out
                 .iter()
                 .map(|&j| cosine(input, i, j))
@@ -176,7 +176,7 @@ pub fn window_residuals(input: &RerankInput, members: &[usize]) -> Vec<f64> {
 fn windowed(input: &RerankInput, params: &Params, window: Option<usize>, log_det: bool) -> Vec<usize> {
     let lambda = params.lambda();
     if lambda == 0.0 {
-        return relevance(input, params);
+        return fair_relevance(input, params);
     }
     let m = params.k().min(input.len());
     let s = input.normalized();
@@ -185,7 +185,8 @@ fn windowed(input: &RerankInput, params: &Params, window: Option<usize>, log_det
         let from = window.map_or(0, |w| out.len().saturating_sub(w - 1));
         let d2 = window_residuals(input, &out[from..]);
         let mut best: Option<(usize, f64)> = None;
-        for i in (0..input.len()).filter(|i| !out.contains(i)) {
+        let choices = choosable(input, &out, m);
+        for &i in &choices {
             let obj = if log_det {
                 if d2[i] < EPSILON {
                     continue;
@@ -203,13 +204,49 @@ fn windowed(input: &RerankInput, params: &Params, window: Option<usize>, log_det
         match best {
             Some((i, _)) => out.push(i),
             None => {
-                let mut rest: Vec<usize> = (0..input.len()).filter(|i| !out.contains(i)).collect();
+                let mut rest = choices;
                 rest.sort_by(|&a, &b| by_score(input.scores(), a, b));
                 out.push(rest[0]);
             }
         }
     }
     out
+}
+
+/// The candidates a step may choose from: all not in `out`, or, where the fairness floor needs a
+/// protected pick (`held < m(t)`) and one remains, the protected ones only.
+fn choosable(input: &RerankInput, out: &[usize], m: usize) -> Vec<usize> {
+    let rest: Vec<usize> = (0..input.len()).filter(|i| !out.contains(i)).collect();
+    let Some(floor) = input.fairness() else { return rest };
+    let need = floor.minimums(m)[out.len()];
+    let held = out.iter().filter(|&&i| floor.protected()[i]).count();
+    let protected: Vec<usize> = rest.iter().copied().filter(|&i| floor.protected()[i]).collect();
+    if held < need && !protected.is_empty() {
+        protected
+    } else {
+        rest
+    }
+}
+
+/// FA*IR (Zehlike et al. 2017, Algorithm 2): at each position the best remaining by score, or
+/// the best protected one where the prefix needs it. Without a floor, relevance order.
+#[must_use]
+pub fn fair_relevance(input: &RerankInput, params: &Params) -> Vec<usize> {
+    let m = params.k().min(input.len());
+    let mut out = Vec::new();
+    while out.len() < m {
+        let mut c = choosable(input, &out, m);
+        c.sort_by(|&a, &b| by_score(input.scores(), a, b));
+        out.push(c[0]);
+    }
+    out
+}
+
+/// Unbounded greedy DPP by the same brute force as the windowed one (no window); with a
+/// fairness floor, the reference for `dpp`.
+#[must_use]
+pub fn dpp_eager(input: &RerankInput, params: &Params) -> Vec<usize> {
+    windowed(input, params, None, true)
 }
 
 /// Sliding-window DPP (Chen, Zhang & Zhou 2018, the window variant) by brute force.
@@ -233,14 +270,14 @@ pub fn ssd(input: &RerankInput, params: &Params) -> Vec<usize> {
 pub fn calibrated(input: &RerankInput, params: &Params) -> Vec<usize> {
     let lambda = params.lambda();
     if lambda == 0.0 {
-        return relevance(input, params);
+        return fair_relevance(input, params);
     }
     let m = params.k().min(input.len());
     let s = input.normalized();
     let mut out: Vec<usize> = Vec::new();
     while out.len() < m {
         let mut best: Option<(usize, f64)> = None;
-        for i in (0..input.len()).filter(|i| !out.contains(i)) {
+        for i in choosable(input, &out, m) {
             let mut with = out.clone();
             with.push(i);
             let kl = miscalibration(input, &with).expect("calibration needs a profile");

@@ -48,6 +48,10 @@ pub fn describe(config: &Config) -> String {
             let text: Vec<String> = profile.iter().map(|(c, w)| format!("{c}={w}")).collect();
             let _ = writeln!(out, "  profile: {}", text.join(" "));
         }
+        if let Some(f) = &slice.fairness {
+            let _ =
+                writeln!(out, "  fairness: protected={} share={} alpha={}", f.protected, f.share, f.alpha);
+        }
         if let Some(sh) = &slice.shadow {
             let _ = writeln!(
                 out,

@@ -79,6 +79,8 @@ pub struct RawSlice {
     pub window: Option<u64>,
     /// Default taste profile (category → weight) for requests that send none.
     pub profile: Option<BTreeMap<String, f64>>,
+    /// Fairness floor for requests that send none.
+    pub fairness: Option<crate::api::wire::WireFairness>,
     /// Weighted A/B arms; each overrides the slice's settings it names.
     pub arms: Option<Vec<RawArm>>,
     /// A diversifier run beside production on a sample of requests, never affecting answers.

@@ -104,6 +104,8 @@ pub struct Slice {
     pub shadow: Option<Shadow>,
     /// Default taste profile for requests that send none.
     pub profile: Option<Vec<(String, f64)>>,
+    /// Default fairness floor for requests that send none (`share` and `alpha` checked).
+    pub fairness: Option<crate::api::wire::WireFairness>,
     /// The table as written, for `check-config` and the admin view.
     pub raw: RawSlice,
 }
@@ -453,6 +455,20 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
             Some(list)
         }
     };
+    if let Some(f) = &raw.fairness {
+        for (key, v) in [("share", f.share), ("alpha", f.alpha)] {
+            if !(v > 0.0 && v < 1.0) {
+                return Err(invalid(
+                    format!("{at}.fairness.{key}"),
+                    format!("{v} is outside the open interval (0, 1)"),
+                ));
+            }
+        }
+        if f.protected.is_empty() || f.protected.len() > 1024 {
+            return Err(invalid(format!("{at}.fairness.protected"), "a group name of 1 to 1024 bytes"));
+        }
+    }
+    let fairness = raw.fairness.clone();
     Ok(Slice {
         name: name.into(),
         arms,
@@ -460,6 +476,7 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
         locked: raw.locked.unwrap_or(false),
         shadow,
         profile,
+        fairness,
         raw,
     })
 }

@@ -47,7 +47,7 @@ use pulp::{Arch, Simd, WithSimd};
 
 use super::basis::{dot, push_basis_vector};
 use super::EPSILON;
-use crate::diversify::{allowed, by_score, take, Workspace};
+use crate::diversify::{by_score, eligible, take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
 /// What a step maximises over the eligible candidates, with `s_i` the normalised score.
@@ -103,9 +103,8 @@ fn run<S: Simd>(
     let emb = input.embeddings().expect("select checked for embeddings");
     let (n, d) = (input.len(), emb.dim());
     let m = params.k().min(n);
-    let lambda = params.lambda();
     let s = input.normalized();
-    ws.reset(n, input.group_count());
+    ws.reset_for(input, m);
     ws.wide.clear();
     ws.wide.reserve(n * d);
     for (row, &inv) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()) {
@@ -138,49 +137,26 @@ fn run<S: Simd>(
         if ws.cancelled() {
             break;
         }
-        // Candidates in descending score order: a gain is at most `(1 − λ)·s_i` (ln d² ≤ 0) or
-        // `(1 − λ)·s_i + λ` (d ≤ 1), so the scan stops at the first whose bound falls below the
-        // best so far, and the logarithms of the rest are never taken.
-        let headroom = if gain == Gain::Volume { lambda } else { 0.0 };
-        let mut best: Option<(f64, usize)> = None;
-        for &i in &ws.order {
-            if best.is_some_and(|(b, _)| (1.0 - lambda) * s[i] + headroom < b) {
+        // Where the fairness floor needs a protected pick, the step chooses among protected
+        // candidates first, and freely only when none remains.
+        let restrict = ws.must_protect(sel.indices.len());
+        let mut chosen = None;
+        for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+            if let Some((_, i)) = best_gain(input, params, ws, gain, r) {
+                chosen = Some(i);
                 break;
             }
-            if ws.taken[i] || !allowed(input, params, &ws.group_taken, i) {
-                continue;
-            }
-            let d2 = ws.running[i];
-            let value = match gain {
-                Gain::LogDet if d2 < EPSILON => continue,
-                Gain::LogDet => (1.0 - lambda) * s[i] + lambda * d2.ln(),
-                // In the span to working precision: no volume (the rounding left of a zero
-                // residual, ±1e-16, must not rank candidates by its square root).
-                Gain::Volume if d2 < EPSILON => (1.0 - lambda) * s[i],
-                Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
-            };
-            // Ties go to the lower index, whatever the scan order.
-            let better = |(b, bi): (f64, usize)| match value.partial_cmp(&b) {
-                Some(std::cmp::Ordering::Greater) => true,
-                Some(std::cmp::Ordering::Equal) => i < bi,
-                _ => false,
-            };
-            if best.is_none_or(better) {
-                best = Some((value, i));
+            // Windowed DPP with no candidate adding a direction: this step goes by score.
+            let fallback = (0..n)
+                .filter(|&i| eligible(input, params, ws, i, r))
+                .min_by(|&a, &b| by_score(input.scores(), a, b));
+            if let Some(i) = fallback {
+                sel.exhausted_at.get_or_insert(sel.indices.len());
+                chosen = Some(i);
+                break;
             }
         }
-        let pick = match best {
-            Some((_, i)) => i,
-            None => {
-                // Windowed DPP with no candidate adding a direction: this step goes by score.
-                let fallback = (0..n)
-                    .filter(|&i| !ws.taken[i] && allowed(input, params, &ws.group_taken, i))
-                    .min_by(|&a, &b| by_score(input.scores(), a, b));
-                let Some(i) = fallback else { break };
-                sel.exhausted_at.get_or_insert(sel.indices.len());
-                i
-            }
-        };
+        let Some(pick) = chosen else { break };
         let d2 = ws.running[pick];
         take(input, ws, &mut sel, pick, d2);
         if sel.indices.len() < m {
@@ -191,6 +167,53 @@ fn run<S: Simd>(
         }
     }
     sel
+}
+
+/// The candidate with the largest gain among those eligible (protected only when `restrict`),
+/// ties to the lower index.
+///
+/// Candidates are visited in descending score order: a gain is at most `(1 − λ)·s_i`
+/// (`ln d² ≤ 0`) or `(1 − λ)·s_i + λ` (`d ≤ 1`), so the scan stops at the first whose bound falls
+/// below the best so far, and the logarithms of the rest are never taken.
+#[inline(always)]
+fn best_gain(
+    input: &RerankInput,
+    params: &Params,
+    ws: &Workspace,
+    gain: Gain,
+    restrict: bool,
+) -> Option<(f64, usize)> {
+    let lambda = params.lambda();
+    let s = input.normalized();
+    let headroom = if gain == Gain::Volume { lambda } else { 0.0 };
+    let mut best: Option<(f64, usize)> = None;
+    for &i in &ws.order {
+        if best.is_some_and(|(b, _)| (1.0 - lambda) * s[i] + headroom < b) {
+            break;
+        }
+        if !eligible(input, params, ws, i, restrict) {
+            continue;
+        }
+        let d2 = ws.running[i];
+        let value = match gain {
+            Gain::LogDet if d2 < EPSILON => continue,
+            Gain::LogDet => (1.0 - lambda) * s[i] + lambda * d2.ln(),
+            // In the span to working precision: no volume (the rounding left of a zero
+            // residual, ±1e-16, must not rank candidates by its square root).
+            Gain::Volume if d2 < EPSILON => (1.0 - lambda) * s[i],
+            Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
+        };
+        // Ties go to the lower index, whatever the scan order.
+        let better = |(b, bi): (f64, usize)| match value.partial_cmp(&b) {
+            Some(std::cmp::Ordering::Greater) => true,
+            Some(std::cmp::Ordering::Equal) => i < bi,
+            _ => false,
+        };
+        if best.is_none_or(better) {
+            best = Some((value, i));
+        }
+    }
+    best
 }
 
 /// The window's members and how the basis relates to them.
