@@ -381,3 +381,50 @@ fn sample_is_deterministic_and_gives_diversification_something_to_trade() {
     assert!(mean_entropy[0] < 1.0, "score order should repeat the favourite category: {mean_entropy:?}");
     assert!(mean_entropy[1] > mean_entropy[0] + 1.0, "dpp at 0.5 should spread categories: {mean_entropy:?}");
 }
+
+/// Issue 17 in batch: `medley rerank` serves windowed DPP, SSD, calibration and a fairness floor
+/// line by line, the same as the server (the engine is shared), and refuses a bad window with its
+/// line number.
+#[test]
+fn rerank_batch_serves_the_new_algorithms_and_fields() {
+    let dir = tempdir("batch17");
+    let (input, output) = (dir.join("in.jsonl"), dir.join("out.jsonl"));
+    let mut rng = Rng(31);
+    let mut lines = Vec::new();
+    for (i, extra) in [
+        json!({"algorithm": "dpp", "window": 3, "lambda": 0.7}),
+        json!({"algorithm": "ssd", "lambda": 0.5}),
+        json!({"algorithm": "calibrated", "lambda": 0.6, "profile": {"cat-0": 2.0, "cat-1": 1.0}}),
+        json!({"algorithm": "mmr", "lambda": 0.5, "fairness": {"protected": "maker", "share": 0.5, "alpha": 0.1}}),
+        json!({"algorithm": "dpp", "window": 1}),
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        let mut r = request(&mut rng, 30, 6, 3);
+        for (n, c) in r["candidates"].as_array_mut().unwrap().iter_mut().enumerate() {
+            c["group"] = json!(if n % 4 == 0 { "maker" } else { "brand" });
+        }
+        r["request_id"] = json!(format!("req-{i}"));
+        for (key, value) in extra.as_object().unwrap() {
+            r[key] = value.clone();
+        }
+        lines.push(r.to_string());
+    }
+    std::fs::write(&input, lines.join("\n") + "\n").unwrap();
+    let out = Command::new(BIN)
+        .args(["rerank", "--input", input.to_str().unwrap(), "--output", output.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let answers: Vec<Value> =
+        std::fs::read_to_string(&output).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(answers[0]["algorithm"], "dpp");
+    assert_eq!(answers[1]["algorithm"], "ssd");
+    assert!(answers[2]["diversity"]["miscalibration"].as_f64().is_some());
+    assert!(answers[3]["diversity"]["protected_share"].as_f64().unwrap() >= 0.3);
+    assert_eq!(
+        (answers[4]["error"]["code"].as_str(), answers[4]["line"].as_u64()),
+        (Some("window_out_of_range"), Some(5))
+    );
+}

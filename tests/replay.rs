@@ -165,4 +165,11 @@ fn windows_and_calibration_join_the_replay_grid() {
     let out = replay(&with_profiles, "calibrated", &[]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     assert!(String::from_utf8(out.stdout).unwrap().contains("calibrated"));
+    // The CSV's miscalibration column is filled when lines carry profiles, and calibration
+    // lowers it as lambda rises.
+    let csv = std::fs::read_to_string(dir.join("frontier.csv")).unwrap();
+    let header: Vec<&str> = csv.lines().next().unwrap().split(',').collect();
+    let col = header.iter().position(|h| *h == "miscalibration").unwrap();
+    let kl: Vec<f64> = csv.lines().skip(1).map(|r| r.split(',').nth(col).unwrap().parse().unwrap()).collect();
+    assert!(kl[2] < kl[1], "calibrated at lambda 0.6 is closer to the profile than at 0: {csv}");
 }

@@ -22,6 +22,12 @@ struct Sums {
     entropy: f64,
     ild: f64,
     distinct: f64,
+    /// Σ miscalibration over slates with a profile, and their count.
+    miscalibration: f64,
+    profiled: usize,
+    /// Σ protected share over slates with a fairness floor, and their count.
+    protected_share: f64,
+    floored: usize,
 }
 
 impl Sums {
@@ -34,6 +40,10 @@ impl Sums {
         self.entropy += o.entropy;
         self.ild += o.ild;
         self.distinct += o.distinct;
+        self.miscalibration += o.miscalibration;
+        self.profiled += o.profiled;
+        self.protected_share += o.protected_share;
+        self.floored += o.floored;
         self
     }
 }
@@ -90,6 +100,10 @@ pub fn evaluate_window(
                 entropy: measures::category_entropy_bits(&s.input, &picked),
                 ild: measures::intra_list_distance(&s.input, &picked).unwrap_or(0.0),
                 distinct: measures::distinct_categories(&s.input, &picked) as f64,
+                miscalibration: measures::miscalibration(&s.input, &picked).unwrap_or(0.0),
+                profiled: usize::from(s.input.profile().is_some()),
+                protected_share: medley_core::fairness::protected_share(&s.input, &picked).unwrap_or(0.0),
+                floored: usize::from(s.input.fairness().is_some()),
             };
             Ok((sums, picked.iter().map(|&i| s.item[i] as usize).collect()))
         })
@@ -118,5 +132,7 @@ pub fn evaluate_window(
         distinct: total.distinct / n,
         coverage: measures::coverage(exposed, corpus.items),
         gini: measures::gini(&exposure),
+        miscalibration: (total.profiled > 0).then(|| total.miscalibration / total.profiled as f64),
+        protected_share: (total.floored > 0).then(|| total.protected_share / total.floored as f64),
     })
 }

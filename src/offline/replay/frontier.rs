@@ -31,6 +31,11 @@ pub struct Point {
     pub coverage: f64,
     /// Gini coefficient of item exposure over offered items.
     pub gini: f64,
+    /// Mean miscalibration over the slates whose line carried a profile; `None` without any.
+    pub miscalibration: Option<f64>,
+    /// Mean protected share over the slates whose line carried a fairness floor; `None` without
+    /// any.
+    pub protected_share: Option<f64>,
 }
 
 /// Parses `0,0.1,0.5` or `start:end:step` (inclusive of `end` within rounding).
@@ -134,13 +139,13 @@ pub fn pick<'a>(points: &'a [Point], baseline: &Point, rule: &PickRule) -> Vec<(
 }
 
 /// The CSV header of `frontier.csv`.
-pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini";
+pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini,miscalibration,protected_share";
 
 /// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
 #[must_use]
 pub fn csv_row(label: &str, p: &Point) -> String {
     format!(
-        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6}",
+        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{}",
         label,
         p.lambda,
         p.window.map_or_else(String::new, |w| w.to_string()),
@@ -153,7 +158,9 @@ pub fn csv_row(label: &str, p: &Point) -> String {
         p.ild,
         p.distinct,
         p.coverage,
-        p.gini
+        p.gini,
+        p.miscalibration.map_or_else(String::new, |x| format!("{x:.6}")),
+        p.protected_share.map_or_else(String::new, |x| format!("{x:.6}")),
     )
 }
 
