@@ -69,15 +69,6 @@ async fn generation(server: &Server) -> u64 {
     admin_config(server).await["config_generation"].as_u64().unwrap()
 }
 
-/// Sum of the integer-valued series (counters, histogram counts) that start with `prefix`.
-async fn metric_sum(server: &Server, prefix: &str) -> u64 {
-    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
-    text.lines()
-        .filter(|l| l.starts_with(prefix))
-        .filter_map(|l| l.rsplit(' ').next()?.parse::<u64>().ok())
-        .sum()
-}
-
 #[tokio::test]
 async fn requests_name_their_slice_arm_and_generation_and_units_stay_in_their_arm() {
     let server = Server::start(CONFIG).await;
@@ -184,12 +175,12 @@ async fn invalid_configs_are_refused_on_every_path_and_the_old_one_keeps_serving
     // File path: an invalid file is refused once the watcher sees it.
     std::fs::write(&server.config_path, CONFIG.replacen("lambda = 0.3", "lambda = 7.0", 1)).unwrap();
     for _ in 0..200 {
-        if metric_sum(&server, "medley_config_reload_failures_total{trigger=\"file\"}").await >= 1 {
+        if server.metric_sum("medley_config_reload_failures_total{trigger=\"file\"}").await >= 1 {
             break;
         }
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
-    assert!(metric_sum(&server, "medley_config_reload_failures_total{trigger=\"file\"}").await >= 1);
+    assert!(server.metric_sum("medley_config_reload_failures_total{trigger=\"file\"}").await >= 1);
     assert_eq!(generation(&server).await, 1);
     serves_lambda(0.3).await;
 
@@ -392,12 +383,12 @@ async fn shadow_runs_are_measured_and_never_change_the_answer() {
         assert_eq!(shadowed["items"], plain["items"], "the shadow must not change the slate");
     }
     for _ in 0..200 {
-        if metric_sum(&server, "medley_shadow_runs_total{slice=\"home\"}").await >= 20 {
+        if server.metric_sum("medley_shadow_runs_total{slice=\"home\"}").await >= 20 {
             break;
         }
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
-    assert_eq!(metric_sum(&server, "medley_shadow_runs_total{slice=\"home\"}").await, 20);
+    assert_eq!(server.metric_sum("medley_shadow_runs_total{slice=\"home\"}").await, 20);
     for family in [
         "medley_shadow_rbo_count{slice=\"home\"}",
         "medley_shadow_overlap_count{slice=\"home\"}",
@@ -405,9 +396,9 @@ async fn shadow_runs_are_measured_and_never_change_the_answer() {
         "medley_shadow_ild_delta_count{slice=\"home\"}",
         "medley_shadow_relevance_retained_count{slice=\"home\"}",
     ] {
-        assert_eq!(metric_sum(&server, family).await, 20, "{family}");
+        assert_eq!(server.metric_sum(family).await, 20, "{family}");
     }
-    assert_eq!(metric_sum(&server, "medley_shadow_runs_total{slice=\"plain\"}").await, 0);
+    assert_eq!(server.metric_sum("medley_shadow_runs_total{slice=\"plain\"}").await, 0);
     server.stop().await;
 }
 
@@ -443,7 +434,7 @@ async fn a_full_shadow_queue_drops_and_counts_without_failing_requests() {
     for h in handles {
         assert_eq!(h.await.unwrap(), 200);
     }
-    let dropped = metric_sum(&server, "medley_shadow_dropped_total{slice=\"home\"}").await;
+    let dropped = server.metric_sum("medley_shadow_dropped_total{slice=\"home\"}").await;
     assert!(dropped >= 1, "16 concurrent requests into a one-slot queue must drop some shadow runs");
     server.stop().await;
     // stop() drained the queue; every request was either shadowed or counted as dropped.

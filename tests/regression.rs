@@ -23,15 +23,6 @@ async fn generation(server: &Server) -> u64 {
     v["config_generation"].as_u64().unwrap()
 }
 
-/// Sum of the series that start with `prefix` (a counter with its labels).
-async fn metric_sum(server: &Server, prefix: &str) -> u64 {
-    let text = reqwest::get(format!("{}/metrics", server.admin)).await.unwrap().text().await.unwrap();
-    text.lines()
-        .filter(|l| l.starts_with(prefix))
-        .filter_map(|l| l.rsplit(' ').next()?.parse::<u64>().ok())
-        .sum()
-}
-
 /// Writes `text` over `path` the way editors and config tools save: a new file renamed over it.
 fn atomic_save(path: &std::path::Path, text: &str) {
     let tmp = path.with_extension("toml.saving");
@@ -57,9 +48,9 @@ async fn issue13_1_one_save_is_one_swap_and_an_unchanged_reload_is_none() {
     // The storm went 1 → 37 in 7 s; a stable generation over 5 s is 25 debounce periods.
     tokio::time::sleep(Duration::from_secs(5)).await;
     assert_eq!(generation(&server).await, 2, "one save, one swap");
-    assert_eq!(metric_sum(&server, "medley_config_reloads_total{trigger=\"file\"}").await, 1);
+    assert_eq!(server.metric_sum("medley_config_reloads_total{trigger=\"file\"}").await, 1);
     // And the watcher went quiet: the reload's own reading of the file triggers nothing.
-    assert!(metric_sum(&server, "medley_config_reload_unchanged_total{trigger=\"file\"}").await <= 1);
+    assert!(server.metric_sum("medley_config_reload_unchanged_total{trigger=\"file\"}").await <= 1);
 
     for _ in 0..2 {
         let r = admin(&server, reqwest::Method::POST, "/admin/reload").send().await.unwrap();
@@ -67,7 +58,7 @@ async fn issue13_1_one_save_is_one_swap_and_an_unchanged_reload_is_none() {
         let v: Value = r.json().await.unwrap();
         assert_eq!(v, json!({"config_generation": 2, "changed": false}));
     }
-    assert_eq!(metric_sum(&server, "medley_config_reload_unchanged_total{trigger=\"admin\"}").await, 2);
+    assert_eq!(server.metric_sum("medley_config_reload_unchanged_total{trigger=\"admin\"}").await, 2);
     // The admin re-reads did not start a file-triggered round either.
     tokio::time::sleep(Duration::from_millis(600)).await;
     assert_eq!(generation(&server).await, 2);
@@ -126,7 +117,7 @@ async fn issue13_2_a_file_invalid_alone_is_refused_though_a_runtime_slice_hides_
     // File watch: refused and counted.
     let file_failures = "medley_config_reload_failures_total{trigger=\"file\"}";
     let deadline = Instant::now() + Duration::from_secs(5);
-    while metric_sum(&server, file_failures).await < 1 {
+    while server.metric_sum(file_failures).await < 1 {
         assert!(Instant::now() < deadline, "the watcher never refused the bad file");
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
@@ -136,10 +127,10 @@ async fn issue13_2_a_file_invalid_alone_is_refused_though_a_runtime_slice_hides_
     let v: Value = r.json().await.unwrap();
     assert_eq!(v["error"]["code"], "invalid_config");
     assert_eq!(v["error"]["path"], "slices.default.algorithm");
-    assert_eq!(metric_sum(&server, "medley_config_reload_failures_total{trigger=\"admin\"}").await, 1);
+    assert_eq!(server.metric_sum("medley_config_reload_failures_total{trigger=\"admin\"}").await, 1);
     // SIGHUP runs this same call on the signal; a test process must not signal itself.
     assert!(server.state.reloader.reload(medley::serve::reload::Trigger::Signal).is_err());
-    assert_eq!(metric_sum(&server, "medley_config_reload_failures_total{trigger=\"sighup\"}").await, 1);
+    assert_eq!(server.metric_sum("medley_config_reload_failures_total{trigger=\"sighup\"}").await, 1);
     assert_eq!(generation(&server).await, 2, "nothing was swapped");
 
     // The last valid file stays the base: DELETE works and serves the file's slice again.

@@ -98,6 +98,16 @@ impl Server {
     pub fn url(&self, path: &str) -> String {
         format!("{}{path}", self.base)
     }
+
+    /// Sum of the integer-valued series of `/metrics` (counters, histogram counts) that start
+    /// with `prefix` (a family name, with labels or not).
+    pub async fn metric_sum(&self, prefix: &str) -> u64 {
+        let text = reqwest::get(format!("{}/metrics", self.admin)).await.unwrap().text().await.unwrap();
+        text.lines()
+            .filter(|l| l.starts_with(prefix))
+            .filter_map(|l| l.rsplit(' ').next()?.parse::<u64>().ok())
+            .sum()
+    }
 }
 
 impl Drop for Server {

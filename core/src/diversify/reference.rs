@@ -32,24 +32,19 @@ pub fn relevance(input: &RerankInput, params: &Params) -> Vec<usize> {
     out
 }
 
-/// MMR recomputing `max_{j∈S} cos(i, j)` over the whole slate at every step. O(N·k²·d).
-#[must_use]
-pub fn mmr(input: &RerankInput, params: &Params) -> Vec<usize> {
-    let lambda = params.lambda();
-    if lambda == 0.0 {
+/// The plain greedy every reference shares: at each step, the choosable candidate with the
+/// largest `objective(slate so far, candidate)`, ties to the lower index; relevance (FA*IR under a
+/// floor) at `lambda = 0`.
+fn greedy(input: &RerankInput, params: &Params, objective: impl Fn(&[usize], usize) -> f64) -> Vec<usize> {
+    if params.lambda() == 0.0 {
         return fair_relevance(input, params);
     }
     let m = params.k().min(input.len());
-    let s = input.normalized();
     let mut out: Vec<usize> = Vec::new();
     while out.len() < m {
         let mut best: Option<(usize, f64)> = None;
         for i in choosable(input, &out, m) {
-            let max_sim = out
-                .iter()
-                .map(|&j| cosine(input, i, j))
-                .fold(None, |a: Option<f64>, x| Some(a.map_or(x, |a| a.max(x))));
-            let obj = (1.0 - lambda) * s[i] - lambda * max_sim.unwrap_or(0.0);
+            let obj = objective(&out, i);
             if best.is_none_or(|(_, b)| obj > b) {
                 best = Some((i, obj));
             }
@@ -57,6 +52,19 @@ pub fn mmr(input: &RerankInput, params: &Params) -> Vec<usize> {
         out.push(best.expect("m <= N leaves a candidate").0);
     }
     out
+}
+
+/// MMR recomputing `max_{j∈S} cos(i, j)` over the whole slate at every step. O(N·k²·d).
+#[must_use]
+pub fn mmr(input: &RerankInput, params: &Params) -> Vec<usize> {
+    let (lambda, s) = (params.lambda(), input.normalized());
+    greedy(input, params, |out, i| {
+        let max_sim = out
+            .iter()
+            .map(|&j| cosine(input, i, j))
+            .fold(None, |a: Option<f64>, x| Some(a.map_or(x, |a| a.max(x))));
+        (1.0 - lambda) * s[i] - lambda * max_sim.unwrap_or(0.0)
+    })
 }
 
 /// Lower Cholesky factor of a dense SPD matrix (row-major `n × n`), or `None` if a pivot is not
@@ -268,25 +276,10 @@ pub fn ssd(input: &RerankInput, params: &Params) -> Vec<usize> {
 /// Without a profile.
 #[must_use]
 pub fn calibrated(input: &RerankInput, params: &Params) -> Vec<usize> {
-    let lambda = params.lambda();
-    if lambda == 0.0 {
-        return fair_relevance(input, params);
-    }
-    let m = params.k().min(input.len());
-    let s = input.normalized();
-    let mut out: Vec<usize> = Vec::new();
-    while out.len() < m {
-        let mut best: Option<(usize, f64)> = None;
-        for i in choosable(input, &out, m) {
-            let mut with = out.clone();
-            with.push(i);
-            let kl = miscalibration(input, &with).expect("calibration needs a profile");
-            let obj = (1.0 - lambda) * s[i] - lambda * kl;
-            if best.is_none_or(|(_, b)| obj > b) {
-                best = Some((i, obj));
-            }
-        }
-        out.push(best.expect("m <= N leaves a candidate").0);
-    }
-    out
+    let (lambda, s) = (params.lambda(), input.normalized());
+    greedy(input, params, |out, i| {
+        let with: Vec<usize> = out.iter().copied().chain([i]).collect();
+        let kl = miscalibration(input, &with).expect("calibration needs a profile");
+        (1.0 - lambda) * s[i] - lambda * kl
+    })
 }
