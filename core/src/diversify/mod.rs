@@ -114,7 +114,8 @@ pub struct Workspace {
     taken: Vec<bool>,
     /// Candidate indices in some order (relevance order, per-group queues).
     order: Vec<usize>,
-    /// DPP (lazy): unit rows widened to f64, row-major N × d.
+    /// DPP (lazy): unit rows widened to f64, row-major N × d; windowed DPP and SSD: the same
+    /// rows transposed into SIMD-width panels.
     wide: Vec<f64>,
     /// MMR and DPP: how many picks each candidate's exact state has seen.
     filled: Vec<usize>,
@@ -126,8 +127,11 @@ pub struct Workspace {
     basis: Vec<f64>,
     /// DPP: the vector being orthogonalised.
     scratch: Vec<f64>,
-    /// Windowed DPP and SSD: every candidate's coordinates in the window's basis, N × stride.
+    /// Windowed DPP and SSD: every candidate's coordinates in the window's basis, column-major
+    /// (stride × N).
     coords: Vec<f64>,
+    /// Windowed DPP and SSD: one projection per candidate (and a member's row before that).
+    proj: Vec<f64>,
     /// Fairness floor: `m(t)` for each position of this call's slate (empty without a floor).
     fair_min: Vec<usize>,
     /// Fairness floor: protected items picked so far.
@@ -180,7 +184,8 @@ impl Workspace {
                 + self.running.capacity()
                 + self.basis.capacity()
                 + self.scratch.capacity()
-                + self.coords.capacity())
+                + self.coords.capacity()
+                + self.proj.capacity())
                 * size_of::<f64>()
             + self.heap.capacity() * size_of::<Bound>()
             + self.screen.retained_bytes()

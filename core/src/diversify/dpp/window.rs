@@ -10,7 +10,8 @@
 //! # Method
 //! - **A pick enters**: its component orthogonal to `Q` (classical Gram–Schmidt applied twice,
 //!   as in the unbounded kernel) becomes a new basis row `q`; every candidate gains the
-//!   coordinate `⟨u_i, q⟩` and loses its square from `d_i²`. O(N·d).
+//!   coordinate `⟨u_i, q⟩` and loses its square from `d_i²`. O(N·d), as one pass over the rows
+//!   stored transposed in SIMD-width panels (lanes across candidates, so no horizontal sums).
 //! - **The oldest member leaves**: the members' coordinates form an upper-triangular `R` (the R
 //!   of the QR factorisation of the window's rows). Dropping its first column leaves an upper
 //!   Hessenberg matrix, which Givens rotations of neighbouring rows make triangular again, with a
@@ -29,7 +30,8 @@
 //!
 //! # Complexity
 //! O(N log N) once to order candidates by score, then O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory
-//! O(N·d) for the f64 rows and O(N·min(w, d)) for the coordinates when the window slides.
+//! O(N·d) for the f64 rows and O(N·min(w, d)) for the coordinates when the window slides,
+//! stored column-major so each rotation streams two contiguous runs.
 //!
 //! # Invariants
 //! `Q` stays orthonormal (rotations are orthogonal); `C_i = Q·u_i` for every candidate; with no
@@ -105,10 +107,18 @@ fn run<S: Simd>(
     let m = params.k().min(n);
     let s = input.normalized();
     ws.reset_for(input, m);
+    // Unit rows in f64, transposed into panels of one SIMD vector of candidates: element (i, j)
+    // at `((i / L)·d + j)·L + i % L` for L lanes, zero-padded to whole panels. A projection on a
+    // basis row is then one broadcast FMA per panel and dimension, lanes across candidates.
+    let lanes = std::mem::size_of::<S::f64s>() / std::mem::size_of::<f64>();
+    let panels = n.div_ceil(lanes);
     ws.wide.clear();
-    ws.wide.reserve(n * d);
-    for (row, &inv) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()) {
-        ws.wide.extend(row.iter().map(|&x| f64::from(x) * inv));
+    ws.wide.resize(panels * d * lanes, 0.0);
+    for (i, (row, &inv)) in emb.as_slice().chunks_exact(d).zip(emb.inv_norms()).enumerate() {
+        let (p, l) = (i / lanes, i % lanes);
+        for (j, &x) in row.iter().enumerate() {
+            ws.wide[(p * d + j) * lanes + l] = f64::from(x) * inv;
+        }
     }
     // Members: the last `capacity` picks. A window that cannot fill before the last pick never
     // slides, so it needs no coordinates.
@@ -122,8 +132,12 @@ fn run<S: Simd>(
         rank: 0,
         stride,
         d,
+        n,
+        lanes,
     };
     ws.basis.clear();
+    // Column-major: coordinate t of every candidate is one contiguous run of n values, so a
+    // rotation of two basis rows is two streams the compiler vectorises.
     ws.coords.clear();
     ws.coords.resize(n * stride, 0.0);
     ws.running.clear();
@@ -163,7 +177,7 @@ fn run<S: Simd>(
             if st.members.len() == capacity {
                 st.leave(simd, ws);
             }
-            st.enter(simd, ws, pick, n);
+            st.enter(simd, ws, pick);
         }
     }
     sel
@@ -229,35 +243,51 @@ struct State {
     /// Coordinates kept per candidate (0 when the window never slides).
     stride: usize,
     d: usize,
+    n: usize,
+    /// Candidates per panel (the SIMD width in f64).
+    lanes: usize,
 }
 
 impl State {
     /// Adds pick `j` to the window: a new basis row and every candidate's coordinate on it.
     #[inline(always)]
-    fn enter<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize, n: usize) {
+    fn enter<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize) {
         self.members.push_back(j);
         if ws.running[j] < EPSILON || self.rank == self.d {
             // In the span already (to working precision): no new direction.
             self.clean = false;
             return;
         }
-        self.push_row(simd, ws, j, n);
+        self.push_row(simd, ws, j);
+    }
+
+    /// Unit row `i` in f64, gathered from the panels into `out`.
+    #[inline(always)]
+    fn row(&self, panel: &[f64], i: usize, out: &mut Vec<f64>) {
+        let (p, l, d, lanes) = (i / self.lanes, i % self.lanes, self.d, self.lanes);
+        out.clear();
+        out.extend((0..d).map(|j| panel[(p * d + j) * lanes + l]));
     }
 
     /// Orthonormalises member `j` against the basis, appends it, and projects every candidate.
     #[inline(always)]
-    fn push_row<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize, n: usize) {
-        let d = self.d;
-        let Workspace { wide, basis, scratch, coords, running, .. } = &mut *ws;
-        push_basis_vector(simd, &wide[j * d..(j + 1) * d], basis, scratch, d);
-        let t = self.rank;
+    fn push_row<S: Simd>(&mut self, simd: S, ws: &mut Workspace, j: usize) {
+        let (d, n, t) = (self.d, self.n, self.rank);
+        let Workspace { wide, basis, scratch, coords, running, proj, .. } = &mut *ws;
+        // `proj` holds the member's row first, then (once the row is in the basis) every
+        // candidate's projection.
+        self.row(wide, j, proj);
+        push_basis_vector(simd, proj, basis, scratch, d);
         let q = &basis[t * d..(t + 1) * d];
+        proj.clear();
+        proj.resize(wide.len() / d, 0.0);
+        project_all(simd, wide, q, d, proj);
         for i in 0..n {
-            let e = dot(simd, &wide[i * d..(i + 1) * d], q);
+            let e = proj[i];
             running[i] -= e * e;
-            if self.stride > 0 {
-                coords[i * self.stride + t] = e;
-            }
+        }
+        if self.stride > 0 {
+            coords[t * n..(t + 1) * n].copy_from_slice(&proj[..n]);
         }
         self.rank += 1;
     }
@@ -266,25 +296,24 @@ impl State {
     #[inline(always)]
     fn leave<S: Simd>(&mut self, simd: S, ws: &mut Workspace) {
         self.members.pop_front();
-        let n = ws.running.len();
         if !self.clean {
-            self.rebuild(simd, ws, n);
+            self.rebuild(simd, ws);
             return;
         }
-        let (d, stride, r) = (self.d, self.stride, self.rank);
+        let (d, n, r) = (self.d, self.n, self.rank);
         let Workspace { basis, coords, running, .. } = &mut *ws;
         // Column t of the remaining R is member t's coordinates (members shifted down by one).
         for t in 0..r.saturating_sub(1) {
             let member = self.members[t];
-            let (a, b) = (coords[member * stride + t], coords[member * stride + t + 1]);
+            let (a, b) = (coords[t * n + member], coords[(t + 1) * n + member]);
             let h = a.hypot(b);
             debug_assert!(h > 0.0, "a clean window's members are independent");
             let (c, sn) = (a / h, b / h);
-            for i in 0..n {
-                let row = &mut coords[i * stride..i * stride + stride];
-                let (x, y) = (row[t], row[t + 1]);
-                row[t] = c * x + sn * y;
-                row[t + 1] = c * y - sn * x;
+            let (xs, ys) = coords[t * n..(t + 2) * n].split_at_mut(n);
+            for (x, y) in xs.iter_mut().zip(ys.iter_mut()) {
+                let (u, v) = (*x, *y);
+                *x = c * u + sn * v;
+                *y = c * v - sn * u;
             }
             let (qa, qb) = basis[t * d..(t + 2) * d].split_at_mut(d);
             for (x, y) in qa.iter_mut().zip(qb.iter_mut()) {
@@ -296,44 +325,98 @@ impl State {
         // The last row is orthogonal to the remaining members: drop it.
         basis.truncate((r - 1) * d);
         self.rank = r - 1;
-        for i in 0..n {
-            let row = &mut coords[i * stride..i * stride + stride];
-            row[r - 1] = 0.0;
-            running[i] = 1.0 - row[..r - 1].iter().map(|c| c * c).sum::<f64>();
-        }
+        coords[(r - 1) * n..r * n].fill(0.0);
+        residuals(coords, running, n, r - 1);
     }
 
     /// Rebuilds the basis from the members in order (skipping those in the span of the ones
     /// before) and every candidate's coordinates and residual.
     #[inline(always)]
-    fn rebuild<S: Simd>(&mut self, simd: S, ws: &mut Workspace, n: usize) {
-        let d = self.d;
+    fn rebuild<S: Simd>(&mut self, simd: S, ws: &mut Workspace) {
+        let (d, n) = (self.d, self.n);
         ws.basis.clear();
         ws.coords.fill(0.0);
         ws.running.fill(1.0);
         self.rank = 0;
         self.clean = true;
         let members: Vec<usize> = self.members.iter().copied().collect();
+        let mut x = Vec::with_capacity(d);
         for j in members {
             // The member's residual against the rows so far decides whether it adds one.
-            let removed: f64 = {
-                let x = &ws.wide[j * d..(j + 1) * d];
-                (0..self.rank)
-                    .map(|t| {
-                        let e = dot(simd, x, &ws.basis[t * d..(t + 1) * d]);
-                        e * e
-                    })
-                    .sum()
-            };
+            self.row(&ws.wide, j, &mut x);
+            let removed: f64 = (0..self.rank)
+                .map(|t| {
+                    let e = dot(simd, &x, &ws.basis[t * d..(t + 1) * d]);
+                    e * e
+                })
+                .sum();
             if 1.0 - removed < EPSILON || self.rank == d {
                 self.clean = false;
                 continue;
             }
-            self.push_row(simd, ws, j, n);
+            self.push_row(simd, ws, j);
         }
-        for i in 0..n {
-            let row = &ws.coords[i * self.stride..i * self.stride + self.stride];
-            ws.running[i] = 1.0 - row[..self.rank].iter().map(|c| c * c).sum::<f64>();
+        residuals(&ws.coords, &mut ws.running, n, self.rank);
+    }
+}
+
+/// `d_i² = 1 − Σ_{t < rank} C_i[t]²` for every candidate, from the column-major coordinates.
+#[inline(always)]
+fn residuals(coords: &[f64], running: &mut [f64], n: usize, rank: usize) {
+    running.fill(1.0);
+    for t in 0..rank {
+        for (r, &c) in running.iter_mut().zip(&coords[t * n..(t + 1) * n]) {
+            *r -= c * c;
         }
+    }
+}
+
+/// `proj[i] = ⟨u_i, q⟩` for every candidate (and the zero padding), from the transposed panels:
+/// one broadcast of `q_j` per dimension, four panels and two dimensions at a time, so eight FMA
+/// chains are in flight.
+#[inline(always)]
+fn project_all<S: Simd>(simd: S, panel: &[f64], q: &[f64], d: usize, proj: &mut [f64]) {
+    let (pv, _) = S::as_simd_f64s(panel);
+    let (out, _) = S::as_mut_simd_f64s(proj);
+    let panels = out.len();
+    let zero = simd.splat_f64s(0.0);
+    let mut p = 0;
+    while p + 4 <= panels {
+        let mut acc = [zero; 8];
+        let base = [p * d, (p + 1) * d, (p + 2) * d, (p + 3) * d];
+        let mut j = 0;
+        while j + 2 <= d {
+            let (q0, q1) = (simd.splat_f64s(q[j]), simd.splat_f64s(q[j + 1]));
+            for b in 0..4 {
+                acc[2 * b] = simd.mul_add_e_f64s(pv[base[b] + j], q0, acc[2 * b]);
+                acc[2 * b + 1] = simd.mul_add_e_f64s(pv[base[b] + j + 1], q1, acc[2 * b + 1]);
+            }
+            j += 2;
+        }
+        if j < d {
+            let q0 = simd.splat_f64s(q[j]);
+            for b in 0..4 {
+                acc[2 * b] = simd.mul_add_e_f64s(pv[base[b] + j], q0, acc[2 * b]);
+            }
+        }
+        for b in 0..4 {
+            out[p + b] = simd.add_f64s(acc[2 * b], acc[2 * b + 1]);
+        }
+        p += 4;
+    }
+    while p < panels {
+        let (mut a0, mut a1) = (zero, zero);
+        let base = p * d;
+        let mut j = 0;
+        while j + 2 <= d {
+            a0 = simd.mul_add_e_f64s(pv[base + j], simd.splat_f64s(q[j]), a0);
+            a1 = simd.mul_add_e_f64s(pv[base + j + 1], simd.splat_f64s(q[j + 1]), a1);
+            j += 2;
+        }
+        if j < d {
+            a0 = simd.mul_add_e_f64s(pv[base + j], simd.splat_f64s(q[j]), a0);
+        }
+        out[p] = simd.add_f64s(a0, a1);
+        p += 1;
     }
 }
