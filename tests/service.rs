@@ -668,19 +668,7 @@ profile = { "cat-0" = 5.0, "cat-1" = 3.0, "cat-2" = 2.0 }
     let mut rng = Rng(17);
     let base = request(&mut rng, 50, 6, 3);
     // The validated input the server sees, for the brute force.
-    let cands: Vec<medley::CandidateInput> = base["candidates"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|c| medley::CandidateInput {
-            id: c["id"].as_str().unwrap().into(),
-            score: c["score"].as_f64().unwrap(),
-            category: c["category"].as_str().map(String::from),
-            embedding: Some(
-                c["embedding"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap() as f32).collect(),
-            ),
-        })
-        .collect();
+    let cands = common::server::candidate_inputs(&base);
     let profile = vec![("cat-0".to_owned(), 1.0), ("cat-1".to_owned(), 1.0), ("cat-7".to_owned(), 2.0)];
     let input =
         medley::RerankInput::new(cands, medley::ScoreTransform::MinMax, true, &medley::Limits::default())
@@ -903,17 +891,7 @@ fairness = { protected = "small-maker", share = 0.4, alpha = 0.1 }
         let share = r["diversity"]["protected_share"].as_f64().unwrap();
         assert!((share - held as f64 / 12.0).abs() < 1e-12);
         if algorithm == "relevance" {
-            let cands: Vec<medley::CandidateInput> = base["candidates"]
-                .as_array()
-                .unwrap()
-                .iter()
-                .map(|c| medley::CandidateInput {
-                    id: c["id"].as_str().unwrap().into(),
-                    score: c["score"].as_f64().unwrap(),
-                    category: None,
-                    embedding: None,
-                })
-                .collect();
+            let cands = common::server::candidate_inputs(&base);
             let input = medley::RerankInput::new(
                 cands,
                 medley::ScoreTransform::MinMax,

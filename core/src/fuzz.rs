@@ -101,7 +101,7 @@ pub fn diversifiers(bytes: &[u8]) {
         let algo = diversify::by_name(name).expect("a registered name");
         let Ok(first) = algo.select(&input, &params, &mut ws) else {
             let no_embeddings = algo.needs_embeddings() && input.embeddings().is_none();
-            let no_profile = name == "calibrated" && input.profile().is_none();
+            let no_profile = algo.needs_profile() && input.profile().is_none();
             assert!(no_embeddings || no_profile, "{name} failed on a valid slate");
             continue;
         };

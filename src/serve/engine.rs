@@ -103,7 +103,7 @@ impl Engine {
             Some(map) => Some(map.into_iter().collect()),
             None => slice.profile.clone(),
         };
-        if profile.is_none() && algorithm.name() == "calibrated" {
+        if profile.is_none() && algorithm.needs_profile() {
             return Err(RequestError::MissingProfile { algorithm: algorithm.name() });
         }
 
@@ -167,7 +167,7 @@ impl Engine {
         };
         // Likewise a shadow that calibrates needs a profile.
         let shadow = shadow.filter(|sh| !sh.algorithm.needs_embeddings() || input.embeddings().is_some());
-        let shadow = shadow.filter(|sh| sh.algorithm.name() != "calibrated" || input.profile().is_some());
+        let shadow = shadow.filter(|sh| !sh.algorithm.needs_profile() || input.profile().is_some());
         Ok(Prepared {
             request_id: request.request_id,
             slice: slice.name.clone(),

@@ -127,6 +127,23 @@ pub fn request(rng: &mut Rng, n: usize, d: usize, groups: usize) -> Value {
     json!({"candidates": candidates})
 }
 
+/// The candidates of a JSON request as the core takes them (id, score, category, embedding).
+pub fn candidate_inputs(body: &Value) -> Vec<medley::CandidateInput> {
+    body["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| medley::CandidateInput {
+            id: c["id"].as_str().unwrap().into(),
+            score: c["score"].as_f64().unwrap(),
+            category: c["category"].as_str().map(String::from),
+            embedding: c["embedding"]
+                .as_array()
+                .map(|e| e.iter().map(|x| x.as_f64().unwrap() as f32).collect()),
+        })
+        .collect()
+}
+
 /// POSTs JSON and returns (status, body as JSON).
 pub async fn post_json(client: &reqwest::Client, url: &str, body: &Value) -> (u16, Value) {
     let r = client.post(url).json(body).send().await.unwrap();

@@ -1,4 +1,4 @@
-use super::{eligible, relevance_selection, take, Diversifier, KernelError, Workspace};
+use super::{eligible, passes, relevance_selection, take, Diversifier, KernelError, Workspace};
 use crate::measures::CALIBRATION_ALPHA;
 use crate::model::{Params, RerankInput, Selection};
 
@@ -38,6 +38,10 @@ impl Diversifier for Calibrated {
 
     fn needs_embeddings(&self) -> bool {
         false
+    }
+
+    fn needs_profile(&self) -> bool {
+        true
     }
 
     /// `N·k`: every candidate scored at every step.
@@ -90,7 +94,7 @@ impl Diversifier for Calibrated {
             // Protected candidates only where the fairness floor needs one, and while any remain.
             let restrict = ws.must_protect(sel.indices.len());
             let mut best: Option<(f64, usize)> = None;
-            for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+            for r in passes(restrict) {
                 for i in 0..n {
                     if !eligible(input, params, ws, i, r) {
                         continue;

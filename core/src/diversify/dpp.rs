@@ -154,6 +154,10 @@ impl Diversifier for Dpp {
         true
     }
 
+    fn takes_window(&self) -> bool {
+        true
+    }
+
     /// `N·k·d + 2·k²·d`: every candidate projected on every basis vector, plus the basis.
     fn work(&self, n: usize, d: usize, k: usize) -> u64 {
         let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);

@@ -1,7 +1,7 @@
 //! `mmr`: Maximal Marginal Relevance with a running max-similarity per candidate.
 
 use super::similarity::row_dots_f32;
-use super::{allowed, eligible, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
+use super::{allowed, eligible, passes, relevance_selection, take, Bound, Diversifier, KernelError, Workspace};
 use pulp::{Arch, Simd, WithSimd};
 use crate::model::{Params, RerankInput, Selection};
 
@@ -181,7 +181,7 @@ fn eager(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection 
         }
         let restrict = ws.must_protect(sel.indices.len());
         let mut best: Option<(f64, usize)> = None;
-        for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+        for r in passes(restrict) {
             for i in 0..n {
                 if !eligible(input, params, ws, i, r) {
                     continue;

@@ -55,6 +55,16 @@ pub trait Diversifier: Send + Sync + std::fmt::Debug {
     /// True when the algorithm compares embeddings (validation then requires them).
     fn needs_embeddings(&self) -> bool;
 
+    /// True when the algorithm calibrates to a taste profile (validation then requires one).
+    fn needs_profile(&self) -> bool {
+        false
+    }
+
+    /// True when the algorithm honours [`Params::window`] (replay then runs it per window).
+    fn takes_window(&self) -> bool {
+        false
+    }
+
     /// Estimated work, in multiply-adds or comparisons, for `n` candidates of dimension `d`
     /// choosing `k`; the service uses it to decide whether a slate is worth a hop to its pool.
     /// The default suits sort-like algorithms: `n·log2(n)`.
@@ -325,6 +335,13 @@ fn fill_by_score(input: &RerankInput, params: &Params, ws: &mut Workspace, m: us
     ws.order = order;
 }
 
+/// The passes of a step's search: restricted to protected candidates first when the fairness
+/// floor needs one (`restrict`), then unrestricted if that found nobody.
+#[inline]
+fn passes(restrict: bool) -> impl Iterator<Item = bool> {
+    [restrict, false].into_iter().take(1 + usize::from(restrict))
+}
+
 /// Whether candidate `i` may be picked at a step restricted to protected candidates (`restrict`)
 /// or not: not taken, within its category cap, and protected when restricted.
 #[inline]
@@ -362,7 +379,7 @@ fn relevance_selection(input: &RerankInput, params: &Params, ws: &mut Workspace)
     // O(N) per pick: fairness slates are short, and this keeps one obvious loop.
     while sel.indices.len() < m {
         let restrict = ws.must_protect(sel.indices.len());
-        let best = [restrict, false].into_iter().take(if restrict { 2 } else { 1 }).find_map(|r| {
+        let best = passes(restrict).find_map(|r| {
             (0..input.len())
                 .filter(|&i| eligible(input, params, ws, i, r))
                 .min_by(|&a, &b| by_score(input.scores(), a, b))

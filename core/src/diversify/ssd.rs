@@ -42,6 +42,10 @@ impl Diversifier for Ssd {
         true
     }
 
+    fn takes_window(&self) -> bool {
+        true
+    }
+
     /// `N·k·d`: every candidate projected on every new basis row.
     fn work(&self, n: usize, d: usize, k: usize) -> u64 {
         let (n, d, k) = (n as u64, d as u64, k.min(n) as u64);

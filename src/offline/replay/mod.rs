@@ -52,7 +52,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     use std::fmt::Write as _;
     let relevance = diversify::by_name("relevance").context("relevance is registered")?;
     let baseline = evaluate(corpus, relevance, 0.0, opts.k).map_err(anyhow::Error::msg)?;
-    if opts.algorithms.iter().any(|a| a.name() == "calibrated") {
+    if opts.algorithms.iter().any(|a| a.needs_profile()) {
         let missing = corpus.without_profile();
         anyhow::ensure!(
             missing == 0,
@@ -63,7 +63,7 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     // Windows apply to the algorithms that take one; every algorithm runs unbounded too.
     let windows_of = |a: &dyn Diversifier| -> Vec<Option<usize>> {
         let mut w = vec![None];
-        if matches!(a.name(), "dpp" | "ssd") {
+        if a.takes_window() {
             w.extend(opts.windows.iter().map(|&w| Some(w)));
         }
         w
@@ -91,13 +91,15 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     let mut csv = String::from(CSV_HEADER);
     csv.push('\n');
     // The baseline row first, labelled as such, then every cell.
+    // The CSV names the algorithm (its window has a column); the table names the line.
+    let csv_rows = std::iter::once(("baseline", &baseline)).chain(points.iter().map(|p| (p.algorithm, p)));
+    for (label, p) in csv_rows {
+        csv.push_str(&csv_row(label, p));
+        csv.push('\n');
+    }
     let rows: Vec<(String, &Point)> = std::iter::once(("baseline".to_owned(), &baseline))
         .chain(points.iter().map(|p| (p.label(), p)))
         .collect();
-    for (_, p) in &rows {
-        csv.push_str(&csv_row(if std::ptr::eq(*p, &baseline) { "baseline" } else { p.algorithm }, p));
-        csv.push('\n');
-    }
     let csv_path = opts.out.join("frontier.csv");
     std::fs::write(&csv_path, csv).with_context(|| format!("writing {}", csv_path.display()))?;
     let svg = crate::offline::replay::plot::render(&points, &baseline, opts.k).map_err(anyhow::Error::msg)?;

@@ -49,7 +49,7 @@ use pulp::{Arch, Simd, WithSimd};
 
 use super::basis::{dot, push_basis_vector};
 use super::EPSILON;
-use crate::diversify::{by_score, eligible, take, Workspace};
+use crate::diversify::{by_score, eligible, passes, take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
 /// What a step maximises over the eligible candidates, with `s_i` the normalised score.
@@ -155,7 +155,7 @@ fn run<S: Simd>(
         // candidates first, and freely only when none remains.
         let restrict = ws.must_protect(sel.indices.len());
         let mut chosen = None;
-        for r in [restrict, false].into_iter().take(1 + usize::from(restrict)) {
+        for r in passes(restrict) {
             if let Some((_, i)) = best_gain(input, params, ws, gain, r) {
                 chosen = Some(i);
                 break;
