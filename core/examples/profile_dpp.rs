@@ -4,7 +4,7 @@
 //! Run: `cargo run --release -p medley-core --example profile_dpp -- [N D K [clustered]]` (default 2000 128 100,
 //! unclustered random rows; `clustered` uses the bench's 8-cluster slates). Environment:
 //! `CALLS=n` sets the number of calls (e.g. for a longer `perf record`); `DPP_STRATEGY=lazy` or
-//! `screened` picks a strategy instead of the default `auto`.
+//! `screened` picks a strategy instead of the default `auto`; `WINDOW=w` runs windowed DPP.
 
 use medley_core::diversify::{Dpp, DppStrategy};
 use medley_core::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Workspace};
@@ -45,7 +45,9 @@ fn main() {
         .collect();
     let input =
         RerankInput::new(cands, ScoreTransform::MinMax, true, &Limits::default()).expect("valid slate");
-    let params = Params::new(k, 0.5, &Limits::default()).expect("valid params");
+    let window = std::env::var("WINDOW").ok().map(|w| w.parse::<u64>().expect("WINDOW=w"));
+    let params =
+        Params::new(k, 0.5, &Limits::default()).and_then(|p| p.with_window(window)).expect("valid params");
     let mut ws = Workspace::new();
     let start = std::time::Instant::now();
     for _ in 0..calls {

@@ -129,8 +129,13 @@ pub struct Workspace {
     wide: Vec<f64>,
     /// MMR and DPP: how many picks each candidate's exact state has seen.
     filled: Vec<usize>,
+    /// Windowed DPP and SSD (lazy): one more than the step at which each candidate's residual
+    /// was last computed in full (0: never).
+    evaluated: Vec<usize>,
     /// MMR and DPP (lazy): stale upper bounds.
     heap: std::collections::BinaryHeap<Bound>,
+    /// Windowed DPP and SSD (lazy): the rows by score rank, transposed into f32 panels.
+    narrow: Vec<f32>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
     /// DPP: orthonormal basis of the picked rows, one d-length row per pick.
@@ -188,7 +193,10 @@ impl Workspace {
     pub fn retained_bytes(&self) -> usize {
         use std::mem::size_of;
         self.taken.capacity() * size_of::<bool>()
-            + (self.order.capacity() + self.filled.capacity() + self.group_taken.capacity())
+            + (self.order.capacity()
+                + self.filled.capacity()
+                + self.evaluated.capacity()
+                + self.group_taken.capacity())
                 * size_of::<usize>()
             + (self.wide.capacity()
                 + self.running.capacity()
@@ -197,6 +205,7 @@ impl Workspace {
                 + self.coords.capacity()
                 + self.proj.capacity())
                 * size_of::<f64>()
+            + self.narrow.capacity() * size_of::<f32>()
             + self.heap.capacity() * size_of::<Bound>()
             + self.screen.retained_bytes()
     }

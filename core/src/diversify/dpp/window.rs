@@ -28,6 +28,10 @@
 //! With no window (or a window that never slides before the last pick) nothing leaves, and only
 //! `d_i²` is kept, as in the unbounded kernel.
 //!
+//! A window that slides and is short against the dimension (`w² ≤ 8·d`, the usual feed windows
+//! of 3 to 20) runs the lazy loop of module `lazy` instead: the same picks, computed only for
+//! the candidates a step's scan reaches, with bounds that carry over from step to step.
+//!
 //! # Complexity
 //! O(N log N) once to order candidates by score, then O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory
 //! O(N·d) for the f64 rows and O(N·min(w, d)) for the coordinates when the window slides,
@@ -46,6 +50,8 @@
 use std::collections::VecDeque;
 
 use pulp::{Arch, Simd, WithSimd};
+
+mod lazy;
 
 use super::basis::{dot, push_basis_vector};
 use super::EPSILON;
@@ -107,6 +113,13 @@ fn run<S: Simd>(
     let m = params.k().min(n);
     let s = input.normalized();
     ws.reset_for(input, m);
+    // Members: the last `capacity` picks. A window that cannot fill before the last pick never
+    // slides, so it needs no coordinates.
+    let capacity = window.map_or(usize::MAX, |w| w.saturating_sub(1).max(1));
+    let slides = capacity < m.saturating_sub(1);
+    if slides && lazy::pays(capacity, d) {
+        return lazy::run(simd, input, params, ws, capacity, gain);
+    }
     // Unit rows in f64, transposed into panels of one SIMD vector of candidates: element (i, j)
     // at `((i / L)·d + j)·L + i % L` for L lanes, zero-padded to whole panels. A projection on a
     // basis row is then one broadcast FMA per panel and dimension, lanes across candidates.
@@ -120,10 +133,6 @@ fn run<S: Simd>(
             ws.wide[(p * d + j) * lanes + l] = f64::from(x) * inv;
         }
     }
-    // Members: the last `capacity` picks. A window that cannot fill before the last pick never
-    // slides, so it needs no coordinates.
-    let capacity = window.map_or(usize::MAX, |w| w.saturating_sub(1).max(1));
-    let slides = capacity < m.saturating_sub(1);
     // At most min(capacity, d) independent members, so that many coordinates per candidate.
     let stride = if slides { capacity.min(d) } else { 0 };
     let mut st = State {
@@ -156,8 +165,8 @@ fn run<S: Simd>(
         let restrict = ws.must_protect(sel.indices.len());
         let mut chosen = None;
         for r in passes(restrict) {
-            if let Some((_, i)) = best_gain(input, params, ws, gain, r) {
-                chosen = Some(i);
+            if let Some((_, at)) = best_gain(input, params, ws, gain, r, |ws, at, _| Some(ws.running[ws.order[at]])) {
+                chosen = Some(ws.order[at]);
                 break;
             }
             // Windowed DPP with no candidate adding a direction: this step goes by score.
@@ -189,26 +198,37 @@ fn run<S: Simd>(
 /// Candidates are visited in descending score order: a gain is at most `(1 − λ)·s_i`
 /// (`ln d² ≤ 0`) or `(1 − λ)·s_i + λ` (`d ≤ 1`), so the scan stops at the first whose bound falls
 /// below the best so far, and the logarithms of the rest are never taken.
+/// Returns the best gain and its candidate's position in `ws.order` (the score order).
+/// `residual(ws, at, floor)` gives `d_i²` against the current window for `i = ws.order[at]`
+/// (the eager loop keeps it in `ws.running`; the lazy one computes it here, when the scan
+/// reaches `i`), or `None` when it can show without computing it that `i`'s gain is below
+/// `floor`, the best so far.
 #[inline(always)]
 fn best_gain(
     input: &RerankInput,
     params: &Params,
-    ws: &Workspace,
+    ws: &mut Workspace,
     gain: Gain,
     restrict: bool,
+    mut residual: impl FnMut(&mut Workspace, usize, Option<f64>) -> Option<f64>,
 ) -> Option<(f64, usize)> {
     let lambda = params.lambda();
     let s = input.normalized();
     let headroom = if gain == Gain::Volume { lambda } else { 0.0 };
-    let mut best: Option<(f64, usize)> = None;
-    for &i in &ws.order {
-        if best.is_some_and(|(b, _)| (1.0 - lambda) * s[i] + headroom < b) {
+    // (gain, candidate, position in the scan)
+    let mut best: Option<(f64, usize, usize)> = None;
+    for at in 0..ws.order.len() {
+        let i = ws.order[at];
+        if best.is_some_and(|(b, _, _)| (1.0 - lambda) * s[i] + headroom < b) {
             break;
         }
         if !eligible(input, params, ws, i, restrict) {
             continue;
         }
-        let d2 = ws.running[i];
+        let Some(d2) = residual(ws, at, best.map(|(b, _, _)| b)) else { continue };
+        if best.is_some_and(|(b, _, _)| surely_below(gain, lambda, s[i], d2, b)) {
+            continue;
+        }
         let value = match gain {
             Gain::LogDet if d2 < EPSILON => continue,
             Gain::LogDet => (1.0 - lambda) * s[i] + lambda * d2.ln(),
@@ -218,16 +238,29 @@ fn best_gain(
             Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
         };
         // Ties go to the lower index, whatever the scan order.
-        let better = |(b, bi): (f64, usize)| match value.partial_cmp(&b) {
+        let better = |(b, bi, _): (f64, usize, usize)| match value.partial_cmp(&b) {
             Some(std::cmp::Ordering::Greater) => true,
             Some(std::cmp::Ordering::Equal) => i < bi,
             _ => false,
         };
         if best.is_none_or(better) {
-            best = Some((value, i));
+            best = Some((value, i, at));
         }
     }
-    best
+    best.map(|(value, _, at)| (value, at))
+}
+
+/// Whether the gain of a candidate with score `s` and residual `d2` is surely below `floor`,
+/// without a logarithm or square root: both are concave, so `ln x ≤ x − 1` and
+/// `√x ≤ (1 + x) / 2` (their tangents at 1) bound the gain from above. The margin of 1e-12 keeps
+/// the rounding of either side from ruling out a candidate that ties.
+#[inline(always)]
+pub(super) fn surely_below(gain: Gain, lambda: f64, s: f64, d2: f64, floor: f64) -> bool {
+    let tangent = match gain {
+        Gain::LogDet => d2 - 1.0,
+        Gain::Volume => 0.5 * (1.0 + d2.max(0.0)),
+    };
+    (1.0 - lambda) * s + lambda * tangent < floor - 1e-12
 }
 
 /// The window's members and how the basis relates to them.
@@ -375,7 +408,7 @@ fn residuals(coords: &[f64], running: &mut [f64], n: usize, rank: usize) {
 /// one broadcast of `q_j` per dimension, four panels and two dimensions at a time, so eight FMA
 /// chains are in flight.
 #[inline(always)]
-fn project_all<S: Simd>(simd: S, panel: &[f64], q: &[f64], d: usize, proj: &mut [f64]) {
+pub(super) fn project_all<S: Simd>(simd: S, panel: &[f64], q: &[f64], d: usize, proj: &mut [f64]) {
     let (pv, _) = S::as_simd_f64s(panel);
     let (out, _) = S::as_mut_simd_f64s(proj);
     let panels = out.len();
