@@ -11,7 +11,7 @@ use std::hint::black_box;
 use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use medley::api::wire::{decode_request, encode_b64_embedding};
+use medley::api::wire::{decode_request, encode_b64_embedding, RerankRequest};
 use medley::serve::config::Config;
 use medley::serve::engine::Engine;
 use medley::serve::pool::Pool;
@@ -52,6 +52,10 @@ fn decode(c: &mut Criterion) {
         group.throughput(Throughput::Bytes(bytes.len() as u64));
         group.bench_function(format!("{name}_decode"), |b| {
             b.iter(|| black_box(decode_request(black_box(&bytes)).unwrap()))
+        });
+        // The previous fast path, serde_json alone, side by side in the same run.
+        group.bench_function(format!("{name}_decode_serde_json"), |b| {
+            b.iter(|| black_box(serde_json::from_slice::<RerankRequest>(black_box(&bytes)).unwrap()))
         });
         group.bench_function(format!("{name}_decode_and_validate"), |b| {
             b.iter(|| black_box(engine.prepare(decode_request(black_box(&bytes)).unwrap()).unwrap()))

@@ -7,7 +7,7 @@ use std::io::BufRead;
 use rayon::prelude::*;
 use serde::Deserialize;
 
-use crate::api::wire::RerankRequest;
+use crate::api::wire::{self, RerankRequest};
 use crate::serve::engine::Engine;
 use medley_core::model::RerankInput;
 
@@ -120,7 +120,11 @@ type Validated = Result<(RerankInput, Vec<bool>, usize), String>;
 
 /// One logged line into a validated slate and its click flags, or why it is skipped.
 fn validate_line(engine: &Engine, line: &[u8]) -> Validated {
-    let logged: Logged = serde_json::from_slice(line).map_err(|e| e.to_string())?;
+    let _ = wire::midpoint_seen();
+    let mut logged: Logged = wire::decode_json(line).map_err(|e| e.to_string())?;
+    if wire::midpoint_seen() {
+        wire::exact_embeddings(&mut logged.request.candidates, line);
+    }
     if logged.clicked.is_empty() {
         return Err("no \"clicked\" ids".into());
     }
