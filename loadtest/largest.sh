@@ -40,6 +40,7 @@ for algo in relevance quota mmr dpp; do
 [server]
 listen = "127.0.0.1:0"
 admin_listen = "127.0.0.1:0"
+grpc_listen = "127.0.0.1:0"
 request_timeout_ms = 600000
 
 [slices.default]

@@ -1,8 +1,9 @@
 # Shared by the loadtest and HTTP bench scripts; source it, do not run it.
 
 # start_medley BIN LOG [ARGS...]: starts `BIN serve ARGS...` in the background, logging to LOG,
-# and waits (up to 10 s) for the addresses it binds. Sets server_pid, addr (public) and admin
-# (private); exits 1 with the log if the server never says where it listens.
+# and waits (up to 10 s) for the addresses it binds. Sets server_pid, addr (public), admin
+# (private) and grpc (gRPC, or "off"); exits 1 with the log if the server never says where it
+# listens.
 start_medley() {
   local bin="$1" log="$2"
   shift 2
@@ -14,6 +15,7 @@ start_medley() {
   for _ in $(seq 1 100); do
     addr="$(sed -n 's/.* listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
     admin="$(sed -n 's/.* admin_listen=\([0-9.:]*\).*/\1/p' "$log" | head -1)"
+    grpc="$(sed -n 's/.* grpc_listen=\([0-9.:]*\|off\).*/\1/p' "$log" | head -1)"
     [ -n "$addr" ] && [ -n "$admin" ] && return 0
     sleep 0.1
   done

@@ -45,6 +45,7 @@ cat > "$work/medley.toml" <<EOF
 [server]
 listen = "127.0.0.1:0"
 admin_listen = "127.0.0.1:0"
+grpc_listen = "127.0.0.1:0"
 # About 10 ms of work at this box's saturation rate (Little's law: 5 000 req/s x 12 ms); past it
 # medley sheds with 503 instead of queueing.
 max_in_flight = 64

@@ -40,6 +40,9 @@ pub enum Command {
         /// Private (metrics, health, admin) listener address; overrides server.admin_listen.
         #[arg(long)]
         admin_listen: Option<SocketAddr>,
+        /// gRPC listener address; overrides server.grpc_listen ("" turns gRPC off).
+        #[arg(long, value_parser = grpc_addr)]
+        grpc_listen: Option<GrpcListen>,
         /// File where slices set through the admin API persist (read at start, rewritten
         /// atomically on each change); without it they are lost on restart.
         #[arg(long)]
@@ -118,4 +121,17 @@ pub enum Command {
         /// The config file (TOML).
         file: PathBuf,
     },
+}
+
+/// `--grpc-listen`: an address, or nothing (the empty string) to turn gRPC off.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct GrpcListen(pub Option<SocketAddr>);
+
+fn grpc_addr(text: &str) -> Result<GrpcListen, String> {
+    if text.is_empty() {
+        return Ok(GrpcListen(None));
+    }
+    text.parse()
+        .map(|a| GrpcListen(Some(a)))
+        .map_err(|e| format!("{text:?} is not an address like 127.0.0.1:8082: {e}"))
 }

@@ -34,6 +34,7 @@
 pub mod api;
 pub mod cli;
 pub mod fuzz;
+pub mod grpc;
 pub mod http;
 pub mod offline;
 pub mod serve;

@@ -9,7 +9,7 @@ use anyhow::Context as _;
 use clap::Parser as _;
 
 use medley::cli::{Cli, Command, LogFormat};
-use medley::http::{serve, AppState};
+use medley::http::{serve_with, AppState};
 use medley::serve::config::Config;
 use medley::serve::engine::Engine;
 use medley::serve::metrics::Metrics;
@@ -60,8 +60,9 @@ fn open_output(path: &str) -> anyhow::Result<Box<dyn Write>> {
 
 fn run(command: Command) -> anyhow::Result<()> {
     match command {
-        Command::Serve { config, listen, admin_listen, overlay } => {
-            let source = ConfigSource { file: config, overlay, listen, admin_listen };
+        Command::Serve { config, listen, admin_listen, grpc_listen, overlay } => {
+            let grpc_listen = grpc_listen.map(|g| g.0);
+            let source = ConfigSource { file: config, overlay, listen, admin_listen, grpc_listen };
             let runtime = tokio::runtime::Builder::new_multi_thread()
                 .enable_all()
                 .build()
@@ -152,9 +153,20 @@ async fn serve_main(source: ConfigSource) -> anyhow::Result<()> {
     let admin = tokio::net::TcpListener::bind(server.admin_listen)
         .await
         .with_context(|| format!("binding {}", server.admin_listen))?;
+    let grpc = match server.grpc_listen {
+        Some(addr) => Some(
+            tokio::net::TcpListener::bind(addr).await.with_context(|| format!("binding {addr} (gRPC)"))?,
+        ),
+        None => None,
+    };
+    let grpc_listen = match &grpc {
+        Some(l) => l.local_addr()?.to_string(),
+        None => "off".to_owned(),
+    };
     tracing::info!(
         listen = %public.local_addr()?,
         admin_listen = %admin.local_addr()?,
+        grpc_listen = %grpc_listen,
         pool_threads = state.pool.threads(),
         config = %described,
         "medley serving"
@@ -164,7 +176,15 @@ async fn serve_main(source: ConfigSource) -> anyhow::Result<()> {
         shutdown::signal().await;
         trigger.fire();
     });
-    serve(public, admin, state, token).await;
+    let beside = {
+        let (state, token) = (state.clone(), token.clone());
+        async move {
+            if let Some(listener) = grpc {
+                medley::grpc::serve(listener, state, token).await;
+            }
+        }
+    };
+    serve_with(public, admin, state, token, beside).await;
     tracing::info!("drained; exiting");
     Ok(())
 }

@@ -96,7 +96,15 @@ fn rerank_batch_keeps_input_order_and_reports_bad_lines() {
 #[test]
 fn serve_drains_and_exits_zero_on_sigterm() {
     let mut child = Command::new(BIN)
-        .args(["serve", "--listen", "127.0.0.1:0", "--admin-listen", "127.0.0.1:0"])
+        .args([
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--admin-listen",
+            "127.0.0.1:0",
+            "--grpc-listen",
+            "127.0.0.1:0",
+        ])
         .stderr(Stdio::piped())
         .spawn()
         .unwrap();

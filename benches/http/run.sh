@@ -12,7 +12,7 @@ command -v wrk >/dev/null || { sudo_=""; [ "$(id -u)" -ne 0 ] && sudo_=sudo; $su
 prepare
 python3 $here/make_requests.py "$work" "$@"
 ls -l "$work" | awk 'NR>1 {print $9, $5, "bytes"}'
-start_medley "$bin" "$work/server.log" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0
+start_medley "$bin" "$work/server.log" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0 --grpc-listen 127.0.0.1:0
 for body in json b64; do
   BODY="$work/rerank-$body.json" wrk -t1 -c1 -d2s -s $here/post.lua "http://$addr/v1/rerank" >/dev/null  # warm-up
   printf '%-5s ' "$body"

@@ -33,7 +33,7 @@ TOML
 for s in on off; do
   python3 -c "import json,sys; b=json.load(open('$tmp/rerank-b64.json')); b['slice']='$s'; json.dump(b, open('$tmp/$s.json','w'))"
 done
-start_medley "$bin" "$tmp/server.log" --config "$tmp/shadow.toml" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0
+start_medley "$bin" "$tmp/server.log" --config "$tmp/shadow.toml" --listen 127.0.0.1:0 --admin-listen 127.0.0.1:0 --grpc-listen 127.0.0.1:0
 for s in off on off on; do
   BODY="$tmp/$s.json" wrk -t1 -c1 -d2s -s $here/post.lua "http://$addr/v1/rerank" >/dev/null
   printf 'sample_rate=%s ' "$([ $s = on ] && echo 1.0 || echo 0.0)"

@@ -20,7 +20,7 @@ use futures_util::{stream, StreamExt};
 
 use super::body::{self, BodyLimits, Reservation};
 use super::{Admitted, ApiError, AppState};
-use crate::api::wire::decode_request;
+use crate::api::wire::{decode_request, RerankRequest, RerankResponse};
 use crate::serve::engine::Engine;
 use crate::serve::shadow::ShadowRunner;
 
@@ -31,19 +31,31 @@ pub const INLINE_BODY_BELOW: usize = 64 << 10;
 /// The committed OpenAPI document, served as is.
 pub const OPENAPI_JSON: &str = include_str!("../../docs/openapi.json");
 
-/// What one served slate leaves behind for metrics and logs.
-struct Served {
-    body: Vec<u8>,
-    slice: String,
-    arm: String,
-    algorithm: &'static str,
+/// What one served slate leaves behind: the answer, and the sizes metrics and logs record.
+pub(crate) struct Served {
+    pub(crate) response: RerankResponse,
     n: usize,
     k: usize,
-    entropy: f64,
-    ild: Option<f64>,
-    miscalibration: Option<f64>,
-    fairness_shortfall: bool,
-    request_id: Option<String>,
+}
+
+impl Served {
+    /// Fills the request span's fields and logs the answer at debug level.
+    pub(crate) fn record(&self, span: &tracing::Span, latency_us: u64) {
+        let r = &self.response;
+        span.record("request_id", r.request_id.as_deref().unwrap_or(""));
+        span.record("slice", r.slice.as_str());
+        span.record("algorithm", r.algorithm);
+        span.record("n", self.n);
+        span.record("k", self.k);
+        span.record("latency_us", latency_us);
+        span.in_scope(|| tracing::debug!("served"));
+    }
+
+    /// The answer as the JSON body.
+    fn json(&self) -> Result<Vec<u8>, ApiError> {
+        serde_json::to_vec(&self.response)
+            .map_err(|e| ApiError::Panicked(format!("encoding the response: {e}")))
+    }
 }
 
 fn serve_prepared(
@@ -53,21 +65,7 @@ fn serve_prepared(
 ) -> Result<Served, ApiError> {
     let reranked = prepared.run(ws)?;
     let response = reranked.to_response();
-    let body = serde_json::to_vec(&response)
-        .map_err(|e| ApiError::Panicked(format!("encoding the response: {e}")))?;
-    let served = Served {
-        body,
-        slice: response.slice,
-        arm: response.arm,
-        algorithm: response.algorithm,
-        n: reranked.prepared.input.len(),
-        k: reranked.selection.indices.len(),
-        entropy: response.diversity.category_entropy_bits,
-        ild: response.diversity.intra_list_distance,
-        miscalibration: response.diversity.miscalibration,
-        fairness_shortfall: response.fairness_shortfall,
-        request_id: response.request_id,
-    };
+    let served = Served { response, n: reranked.prepared.input.len(), k: reranked.selection.indices.len() };
     // The answer is built; the shadow gets the validated slate and the primary picks by move.
     if let Some(sh) = reranked.prepared.shadow {
         shadow.submit(reranked, sh);
@@ -75,25 +73,53 @@ fn serve_prepared(
     Ok(served)
 }
 
-/// Decodes, validates and serves one request body against `engine`, within its deadline.
-async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Result<Served, ApiError> {
+/// One request as a front end hands it over: JSON bytes (decoded on the pool when large), or a
+/// request already decoded (gRPC).
+pub(crate) enum Job {
+    /// A JSON body.
+    Json(Bytes),
+    /// A decoded request, with its count of embedding values (to size the work).
+    Decoded(Box<RerankRequest>, usize),
+}
+
+/// Decodes, validates and serves one request against `engine`, within `deadline`, and records
+/// the duration and diversity metrics.
+pub(crate) async fn serve_one(
+    state: &AppState,
+    engine: Arc<Engine>,
+    job: Job,
+    deadline: std::time::Duration,
+) -> Result<Served, ApiError> {
     let started = Instant::now();
-    let deadline = engine.config().server.request_timeout;
     let shadow = state.shadow.clone();
     let work = async {
-        if bytes.len() >= INLINE_BODY_BELOW {
-            state
-                .pool
-                .run(u64::MAX, move |ws| {
-                    serve_prepared(engine.prepare(decode_request(&bytes)?)?, ws, &shadow)
-                })
-                .await
-        } else {
-            match decode_request(&bytes).and_then(|r| engine.prepare(r)) {
-                Ok(prepared) => {
-                    state.pool.run(prepared.work(), move |ws| serve_prepared(prepared, ws, &shadow)).await
+        match job {
+            Job::Json(bytes) if bytes.len() >= INLINE_BODY_BELOW => {
+                state
+                    .pool
+                    .run(u64::MAX, move |ws| {
+                        serve_prepared(engine.prepare(decode_request(&bytes)?)?, ws, &shadow)
+                    })
+                    .await
+            }
+            // Validating a large decoded slate (norms of every row) is CPU work too.
+            Job::Decoded(request, values) if values >= INLINE_BODY_BELOW / 8 => {
+                state
+                    .pool
+                    .run(u64::MAX, move |ws| serve_prepared(engine.prepare(*request)?, ws, &shadow))
+                    .await
+            }
+            job => {
+                let decoded = match job {
+                    Job::Json(bytes) => decode_request(&bytes),
+                    Job::Decoded(request, _) => Ok(*request),
+                };
+                match decoded.and_then(|r| engine.prepare(r)) {
+                    Ok(prepared) => {
+                        state.pool.run(prepared.work(), move |ws| serve_prepared(prepared, ws, &shadow)).await
+                    }
+                    Err(e) => Ok(Err(e.into())),
                 }
-                Err(e) => Ok(Err(e.into())),
             }
         }
     };
@@ -105,18 +131,19 @@ async fn serve_one(state: &AppState, engine: Arc<Engine>, bytes: Bytes) -> Resul
         }
         Ok(Ok(result)) => result?,
     };
+    let r = &served.response;
     state.metrics.observe_slate(
-        &served.slice,
-        &served.arm,
-        served.algorithm,
+        &r.slice,
+        &r.arm,
+        r.algorithm,
         started.elapsed().as_secs_f64(),
         served.n,
-        served.entropy,
-        served.ild,
-        served.miscalibration,
+        r.diversity.category_entropy_bits,
+        r.diversity.intra_list_distance,
+        r.diversity.miscalibration,
     );
-    if served.fairness_shortfall {
-        state.metrics.fairness_shortfall.with_label_values(&[&served.slice]).inc();
+    if r.fairness_shortfall {
+        state.metrics.fairness_shortfall.with_label_values(&[&r.slice]).inc();
     }
     Ok(served)
 }
@@ -164,18 +191,13 @@ pub(super) async fn rerank(State(state): State<AppState>, request: Request) -> R
         latency_us = tracing::field::Empty,
     );
     let started = Instant::now();
-    let result = serve_one(&state, engine, bytes).await;
+    let deadline = engine.config().server.request_timeout;
+    let result = serve_one(&state, engine, Job::Json(bytes), deadline).await;
     let latency_us = started.elapsed().as_micros() as u64;
     match result {
         Ok(served) => {
-            span.record("request_id", served.request_id.as_deref().unwrap_or(""));
-            span.record("slice", served.slice.as_str());
-            span.record("algorithm", served.algorithm);
-            span.record("n", served.n);
-            span.record("k", served.k);
-            span.record("latency_us", latency_us);
-            span.in_scope(|| tracing::debug!("served"));
-            Ok(json_response(StatusCode::OK, served.body))
+            served.record(&span, latency_us);
+            Ok(json_response(StatusCode::OK, served.json()?))
         }
         Err(e) => {
             span.record("latency_us", latency_us);
@@ -324,7 +346,11 @@ pub(super) async fn rerank_stream(
         async move {
             let outcome = match piece {
                 Piece::Line(n, bytes, _reservation) => {
-                    serve_one(&state, engine, bytes).await.map_err(|e| (n, e))
+                    let deadline = engine.config().server.request_timeout;
+                    match serve_one(&state, engine, Job::Json(bytes), deadline).await {
+                        Ok(served) => served.json().map_err(|e| (n, e)),
+                        Err(e) => Err((n, e)),
+                    }
                 }
                 Piece::TooLong(n) => Err((n, ApiError::PayloadTooLarge { limit: max_line })),
                 Piece::OverBudget(n) => {
@@ -335,9 +361,9 @@ pub(super) async fn rerank_stream(
                 Piece::Stalled(n) => Err((n, ApiError::BodyTimeout { ms: gap.as_millis() })),
             };
             let mut line = match outcome {
-                Ok(served) => {
+                Ok(body) => {
                     state.metrics.stream_lines.with_label_values(&["ok"]).inc();
-                    served.body
+                    body
                 }
                 Err((n, e)) => {
                     state.metrics.stream_lines.with_label_values(&["error"]).inc();

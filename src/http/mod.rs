@@ -27,6 +27,7 @@ use tokio::sync::{OwnedSemaphorePermit, Semaphore};
 use tower_http::catch_panic::CatchPanicLayer;
 
 pub use error::{ApiError, InternalDetail, RETRY_AFTER_SECONDS};
+pub(crate) use handlers::{serve_one, Job};
 pub use handlers::{INLINE_BODY_BELOW, OPENAPI_JSON};
 
 use crate::serve::config::ConfigError;
@@ -125,8 +126,25 @@ impl AppState {
         self.bound.get().copied()
     }
 
-    fn is_draining(&self) -> bool {
+    /// Whether shutdown has started.
+    pub(crate) fn is_draining(&self) -> bool {
         self.draining.load(Ordering::Relaxed)
+    }
+
+    /// `server.max_in_flight`, fixed at start.
+    pub(crate) fn max_in_flight(&self) -> usize {
+        self.max_in_flight
+    }
+
+    /// A concurrency permit (and the in-flight gauge) for one request or stream, unless
+    /// shutdown has started or every permit is taken. Shared by every front end.
+    pub(crate) fn admit(&self) -> Option<Admitted> {
+        if self.is_draining() {
+            return None;
+        }
+        let permit = self.permits.clone().try_acquire_owned().ok()?;
+        self.metrics.in_flight.inc();
+        Some(Admitted { _permit: permit, metrics: self.metrics.clone() })
     }
 }
 
@@ -205,7 +223,7 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
     if state.is_draining() {
         return ApiError::ShuttingDown.into_response();
     }
-    let Ok(permit) = state.permits.clone().try_acquire_owned() else {
+    let Some(admitted) = state.admit() else {
         state.metrics.shed.inc();
         // Read the refused body to its end (bounded), so a client that sends before it reads
         // gets this answer rather than a reset, and the connection stays reusable.
@@ -219,9 +237,7 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
         return body::Refusal { error: ApiError::Overloaded { limit: state.max_in_flight }, reusable }
             .into_response();
     };
-    state.metrics.in_flight.inc();
-    let admitted = Arc::new(Admitted { _permit: permit, metrics: state.metrics.clone() });
-    request.extensions_mut().insert(admitted);
+    request.extensions_mut().insert(Arc::new(admitted));
     next.run(request).await
 }
 
@@ -229,6 +245,18 @@ async fn admit(State(state): State<AppState>, mut request: Request, next: Next) 
 /// lets in-flight requests (and open streams) finish, and returns. Accept errors are logged and
 /// retried (see [`conn`]), so it returns only through shutdown.
 pub async fn serve(public: TcpListener, admin: TcpListener, state: AppState, shutdown: Shutdown) {
+    serve_with(public, admin, state, shutdown, async {}).await;
+}
+
+/// [`serve`], running `beside` (another front end on the same state, e.g. gRPC) to its end
+/// too before the shadow queue drains.
+pub async fn serve_with(
+    public: TcpListener,
+    admin: TcpListener,
+    state: AppState,
+    shutdown: Shutdown,
+    beside: impl std::future::Future<Output = ()>,
+) {
     if let (Ok(p), Ok(a)) = (public.local_addr(), admin.local_addr()) {
         let _ = state.bound.set((p, a));
     }
@@ -255,6 +283,7 @@ pub async fn serve(public: TcpListener, admin: TcpListener, state: AppState, shu
     tokio::join!(
         conn::serve_listener(public, app(state.clone()), limits, shutdown.clone()),
         conn::serve_listener(admin, admin_app(state.clone()), limits, shutdown.clone()),
+        beside,
     );
     // Background work holds the shutdown token; wait for it, then drain the shadow queue.
     if let Some(w) = watcher {

@@ -58,6 +58,9 @@ pub struct Metrics {
     pub config_info: IntGaugeVec,
     /// `medley_stream_lines_total{outcome}`: stream and batch lines, `ok` or `error`.
     pub stream_lines: IntCounterVec,
+    /// `medley_grpc_requests_total{code}`: gRPC requests (and stream messages) answered, by
+    /// gRPC status code name (`OK`, `INVALID_ARGUMENT`, ...).
+    pub grpc_requests: IntCounterVec,
     /// `medley_pool_threads`: kernel pool size.
     pub pool_threads: IntGauge,
     /// `medley_config_reloads_total{trigger}`: successful swaps, by what asked for them.
@@ -181,6 +184,13 @@ impl Metrics {
             ),
             &["outcome"],
         ));
+        let grpc_requests = must(IntCounterVec::new(
+            Opts::new(
+                "medley_grpc_requests_total",
+                "gRPC requests and stream messages answered, by status code.",
+            ),
+            &["code"],
+        ));
         let pool_threads = must(IntGauge::new("medley_pool_threads", "Threads in the kernel pool."));
         let counter =
             |name: &str, help: &str, label: &str| must(IntCounterVec::new(Opts::new(name, help), &[label]));
@@ -261,6 +271,7 @@ impl Metrics {
         reg(Box::new(config_generation.clone()));
         reg(Box::new(config_info.clone()));
         reg(Box::new(stream_lines.clone()));
+        reg(Box::new(grpc_requests.clone()));
         reg(Box::new(pool_threads.clone()));
         reg(Box::new(config_reloads.clone()));
         reg(Box::new(config_reload_failures.clone()));
@@ -291,6 +302,7 @@ impl Metrics {
             config_generation,
             config_info,
             stream_lines,
+            grpc_requests,
             pool_threads,
             config_reloads,
             config_reload_failures,

@@ -73,6 +73,8 @@ pub struct ConfigSource {
     pub listen: Option<SocketAddr>,
     /// `--admin-listen`, replacing `server.admin_listen`.
     pub admin_listen: Option<SocketAddr>,
+    /// `--grpc-listen`, replacing `server.grpc_listen` (`Some(None)`: gRPC off).
+    pub grpc_listen: Option<Option<SocketAddr>>,
 }
 
 fn read_error(path: &Path, e: &std::io::Error) -> ConfigError {
@@ -156,6 +158,9 @@ impl ConfigSource {
         }
         if let Some(a) = self.admin_listen {
             config.server.admin_listen = a;
+        }
+        if let Some(a) = self.grpc_listen {
+            config.server.grpc_listen = a;
         }
         Ok(config)
     }

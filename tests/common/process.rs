@@ -26,24 +26,47 @@ impl Drop for KillOnDrop {
     }
 }
 
-/// Starts `medley serve` on ephemeral ports with `args`; returns the child and both addresses.
+/// Starts `medley serve` on ephemeral ports with `args`; returns the child and both HTTP
+/// addresses.
+#[allow(dead_code)]
 pub fn spawn_server(args: &[&str], envs: &[(&str, &str)]) -> (std::process::Child, String, String) {
+    let (child, public, admin, _) = spawn_server_with_grpc(args, envs);
+    (child, public, admin)
+}
+
+/// [`spawn_server`], also returning the gRPC listener's address.
+pub fn spawn_server_with_grpc(
+    args: &[&str],
+    envs: &[(&str, &str)],
+) -> (std::process::Child, String, String, String) {
     let mut cmd = Command::new(BIN);
-    cmd.args(["serve", "--listen", "127.0.0.1:0", "--admin-listen", "127.0.0.1:0"])
-        .args(args)
-        .stderr(Stdio::piped());
+    cmd.args([
+        "serve",
+        "--listen",
+        "127.0.0.1:0",
+        "--admin-listen",
+        "127.0.0.1:0",
+        "--grpc-listen",
+        "127.0.0.1:0",
+    ])
+    .args(args)
+    .stderr(Stdio::piped());
     for (k, v) in envs {
         cmd.env(k, v);
     }
     let mut child = cmd.spawn().unwrap();
     let mut stderr = BufReader::new(child.stderr.take().unwrap());
     let mut line = String::new();
-    let (public, admin) = loop {
+    let (public, admin, grpc) = loop {
         line.clear();
         assert!(stderr.read_line(&mut line).unwrap() > 0, "server exited early");
-        if let (Some(p), Some(a)) = (line.split(" listen=").nth(1), line.split(" admin_listen=").nth(1)) {
+        if let (Some(p), Some(a), Some(g)) = (
+            line.split(" listen=").nth(1),
+            line.split(" admin_listen=").nth(1),
+            line.split(" grpc_listen=").nth(1),
+        ) {
             let word = |s: &str| s.split_whitespace().next().unwrap().to_owned();
-            break (word(p), word(a));
+            break (word(p), word(a), word(g));
         }
     };
     // Keep draining stderr so the server never blocks on a full pipe.
@@ -54,5 +77,5 @@ pub fn spawn_server(args: &[&str], envs: &[(&str, &str)]) -> (std::process::Chil
     let status =
         runtime.block_on(async { reqwest::get(format!("http://{public}/healthz")).await.unwrap().status() });
     assert_eq!(status, 200);
-    (child, public, admin)
+    (child, public, admin, grpc)
 }

@@ -1,10 +1,10 @@
-//! Starts the real server on ephemeral loopback ports, the way the binary does (`http::serve`),
-//! and builds request bodies.
+//! Starts the real server on ephemeral loopback ports, the way the binary does (`http::serve`,
+//! with the gRPC front end beside it), and builds request bodies.
 
 use std::net::SocketAddr;
 use std::sync::Arc;
 
-use medley::http::{serve, AppState};
+use medley::http::{serve_with, AppState};
 use medley::serve::metrics::Metrics;
 use medley::serve::reload::ConfigSource;
 use medley::serve::shutdown::{self, Trigger};
@@ -17,6 +17,8 @@ pub struct Server {
     pub base: String,
     pub admin: String,
     pub addr: SocketAddr,
+    /// The gRPC listener, as `http://127.0.0.1:port` (what a tonic client connects to).
+    pub grpc: String,
     /// The config file the server reads (and watches).
     pub config_path: std::path::PathBuf,
     pub state: AppState,
@@ -47,11 +49,14 @@ impl Server {
         };
         let public = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let admin = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let grpc = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let (addr, admin_addr) = (public.local_addr().unwrap(), admin.local_addr().unwrap());
+        let grpc_addr = grpc.local_addr().unwrap();
         let state = AppState::start(source, Arc::new(Metrics::new()), admin_token.map(str::to_owned))
             .expect("test config is valid");
         let (trigger, token) = shutdown::channel();
-        let task = tokio::spawn(serve(public, admin, state.clone(), token));
+        let beside = medley::grpc::serve(grpc, state.clone(), token.clone());
+        let task = tokio::spawn(serve_with(public, admin, state.clone(), token, beside));
         // serve() sets up the file watcher before it answers anything: one answered request
         // means a config write from now on is seen.
         let health = reqwest::get(format!("http://{addr}/healthz")).await.expect("server answers");
@@ -60,6 +65,7 @@ impl Server {
             base: format!("http://{addr}"),
             admin: format!("http://{admin_addr}"),
             addr,
+            grpc: format!("http://{grpc_addr}"),
             config_path,
             state,
             trigger: Some(trigger),

@@ -9,7 +9,8 @@ pub fn describe(config: &Config) -> String {
     let s = &config.server;
     let mut out = String::new();
     let _ = writeln!(out, "config ok");
-    let _ = writeln!(out, "listen {} (public), {} (private)", s.listen, s.admin_listen);
+    let grpc = s.grpc_listen.map_or_else(|| "off".to_owned(), |a| a.to_string());
+    let _ = writeln!(out, "listen {} (public), {} (private), gRPC {grpc}", s.listen, s.admin_listen);
     let _ = writeln!(
         out,
         "limits: body {} bytes ({} in flight), {} candidates, dim {}, k {}; timeout {} ms; {} in flight; {} pool threads; \

@@ -26,6 +26,8 @@ pub struct RawServer {
     pub listen: Option<String>,
     /// Private listener for metrics and health (`"127.0.0.1:8081"`).
     pub admin_listen: Option<String>,
+    /// gRPC listener (`"127.0.0.1:8082"`); the empty string turns gRPC off.
+    pub grpc_listen: Option<String>,
     /// Largest accepted request body, and the longest line on the stream endpoint.
     pub max_body_bytes: Option<u64>,
     /// Request body bytes held at once across all requests (reserved at the declared

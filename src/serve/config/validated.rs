@@ -21,6 +21,8 @@ pub struct ServerSettings {
     pub listen: SocketAddr,
     /// Private listener.
     pub admin_listen: SocketAddr,
+    /// gRPC listener; `None` when gRPC is off.
+    pub grpc_listen: Option<SocketAddr>,
     /// Largest body (and stream line) in bytes.
     pub max_body_bytes: usize,
     /// Body bytes held at once across all requests (fixed at start).
@@ -229,6 +231,10 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
     let defaults = Limits::default();
     let listen = parse_addr("server.listen", raw.listen.as_ref(), "127.0.0.1:8080")?;
     let admin_listen = parse_addr("server.admin_listen", raw.admin_listen.as_ref(), "127.0.0.1:8081")?;
+    let grpc_listen = match raw.grpc_listen.as_deref() {
+        Some("") => None,
+        other => Some(parse_addr("server.grpc_listen", other.map(str::to_owned).as_ref(), "127.0.0.1:8082")?),
+    };
     // Upper bounds keep a typo from configuring a service that can be made to allocate without
     // limit; they are far above any realistic slate.
     let max_body_bytes = in_range("server.max_body_bytes", raw.max_body_bytes, 16 << 20, 1024..=1 << 30)?;
@@ -268,6 +274,7 @@ fn validate_server(raw: &RawServer) -> Result<ServerSettings, ConfigError> {
     Ok(ServerSettings {
         listen,
         admin_listen,
+        grpc_listen,
         max_body_bytes: to_usize(max_body_bytes),
         max_inflight_body_bytes: to_usize(max_inflight_body_bytes),
         limits: Limits {
