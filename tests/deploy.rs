@@ -55,14 +55,16 @@ fn ports(container: &Yaml) -> BTreeMap<String, u16> {
         .collect()
 }
 
-/// The listeners `medley serve` would bind with these args (flags over the config file).
-fn serve_listeners(args: &[&str]) -> (Option<std::path::PathBuf>, SocketAddr, SocketAddr) {
+/// The listeners `medley serve` would bind with these args (flags over the config file):
+/// config, public, private, gRPC.
+fn serve_listeners(args: &[&str]) -> (Option<std::path::PathBuf>, SocketAddr, SocketAddr, SocketAddr) {
     let cli = Cli::try_parse_from(std::iter::once("medley").chain(args.iter().copied()))
         .unwrap_or_else(|e| panic!("the Deployment's args are not a medley command line: {e}"));
-    let Command::Serve { config, listen, admin_listen, .. } = cli.command else {
+    let Command::Serve { config, listen, admin_listen, grpc_listen, .. } = cli.command else {
         panic!("the Deployment must run `medley serve`")
     };
-    (config, listen.expect("--listen is set"), admin_listen.expect("--admin-listen is set"))
+    let grpc = grpc_listen.and_then(|g| g.0).expect("--grpc-listen is set");
+    (config, listen.expect("--listen is set"), admin_listen.expect("--admin-listen is set"), grpc)
 }
 
 #[test]
@@ -86,7 +88,7 @@ async fn deployment_matches_the_binary_and_its_probes_answer() {
     assert_eq!(containers.len(), 1);
     let c = &containers[0];
     let args: Vec<&str> = list(&c["args"]).iter().map(s).collect();
-    let (config_path, listen, admin_listen) = serve_listeners(&args);
+    let (config_path, listen, admin_listen, grpc_listen) = serve_listeners(&args);
 
     // Ports: the args bind all interfaces on the binary's default ports, and the container
     // declares the same numbers.
@@ -100,6 +102,9 @@ async fn deployment_matches_the_binary_and_its_probes_answer() {
     );
     assert_eq!(ports["http"], listen.port());
     assert_eq!(ports["admin"], admin_listen.port());
+    assert_eq!(grpc_listen.port(), defaults.server.grpc_listen.expect("gRPC is on by default").port());
+    assert!(grpc_listen.ip().is_unspecified());
+    assert_eq!(ports["grpc"], grpc_listen.port());
 
     // Scrape annotations name the private listener and the metrics path.
     let ann = &pod["metadata"]["annotations"];
@@ -199,8 +204,9 @@ fn service_hpa_and_pdb_point_at_the_deployment() {
     let ports = ports(container);
     for p in list(&service["spec"]["ports"]) {
         let target = s(&p["targetPort"]);
-        assert_eq!(target, "http", "only the public listener is a Service");
+        assert!(["http", "grpc"].contains(&target), "only the public listeners are a Service");
         assert!(ports.contains_key(target));
+        assert_eq!(p["port"].as_i64(), Some(i64::from(ports[target])), "the Service keeps the port numbers");
     }
 
     let hpa = by_kind(&all, "HorizontalPodAutoscaler");
