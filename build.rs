@@ -8,6 +8,11 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let fds = protox::compile([proto], ["proto"])?;
     let out = std::path::PathBuf::from(std::env::var("OUT_DIR")?);
     std::fs::write(out.join("medley_descriptor.bin"), prost::Message::encode_to_vec(&fds))?;
-    tonic_prost_build::configure().build_client(true).build_server(true).compile_fds(fds)?;
+    // Messages decode from one contiguous slice (src/grpc/codec.rs says why).
+    tonic_prost_build::configure()
+        .build_client(true)
+        .build_server(true)
+        .codec_path("crate::grpc::codec::SliceCodec")
+        .compile_fds(fds)?;
     Ok(())
 }
