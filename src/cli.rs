@@ -29,7 +29,7 @@ pub enum LogFormat {
 /// Subcommands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Serve the HTTP API (embedded default config unless --config is given).
+    /// Serve the HTTP and gRPC APIs (embedded default config unless --config is given).
     Serve {
         /// Config file (TOML); without it the embedded config/default.toml is served.
         #[arg(long)]

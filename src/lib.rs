@@ -5,12 +5,15 @@
 //! metrics, the fairness floor), re-exported here as [`model`], [`diversify`], [`measures`],
 //! [`evaluate`] and [`fairness`]. This
 //! crate is the service and its tools, one folder per layer, each importing only the layers
-//! below it (`medley-core` < [`api`] < [`serve`] < [`http`], [`offline`]):
+//! below it (`medley-core` < [`api`] < [`serve`] < [`http`] < [`grpc`]; [`offline`] beside
+//! [`http`]):
 //! - [`api`]: the wire contract every front end shares: JSON request and response types, their
 //!   decoding, and [`api::RequestError`] with the stable codes and paths.
 //! - [`serve`]: the running service: config and hot swap, the engine, the kernel pool, shadows,
 //!   metrics, shutdown.
 //! - [`http`]: the HTTP front end: routers, middleware, bodies, and [`http::serve`].
+//! - [`grpc`]: the gRPC front end (`medley.v1.Reranker`), serving through the HTTP front end's
+//!   state, so both share permits, deadline, pool and metrics; [`grpc::serve`].
 //! - [`offline`]: `medley rerank`, `medley sample` and `medley replay`.
 //! - [`cli`]: the command-line types; [`fuzz`]: the bodies of the fuzz targets in `fuzz/`,
 //!   replayed over their committed corpus by `tests/fuzz_corpus.rs`.
