@@ -160,26 +160,9 @@ fn run<S: Simd>(
         if ws.cancelled() {
             break;
         }
-        // Where the fairness floor needs a protected pick, the step chooses among protected
-        // candidates first, and freely only when none remains.
-        let restrict = ws.must_protect(sel.indices.len());
-        let mut chosen = None;
-        for r in passes(restrict) {
-            if let Some((_, at)) = best_gain(input, params, ws, gain, r, |ws, at, _| Some(ws.running[ws.order[at]])) {
-                chosen = Some(ws.order[at]);
-                break;
-            }
-            // Windowed DPP with no candidate adding a direction: this step goes by score.
-            let fallback = (0..n)
-                .filter(|&i| eligible(input, params, ws, i, r))
-                .min_by(|&a, &b| by_score(input.scores(), a, b));
-            if let Some(i) = fallback {
-                sel.exhausted_at.get_or_insert(sel.indices.len());
-                chosen = Some(i);
-                break;
-            }
-        }
-        let Some(pick) = chosen else { break };
+        let residual = |ws: &mut Workspace, at: usize, _| Some(ws.running[ws.order[at]]);
+        let Some(at) = choose(input, params, ws, gain, &mut sel, residual) else { break };
+        let pick = ws.order[at];
         let d2 = ws.running[pick];
         take(input, ws, &mut sel, pick, d2);
         if sel.indices.len() < m {
@@ -190,6 +173,34 @@ fn run<S: Simd>(
         }
     }
     sel
+}
+
+/// One step's choice, as a position in `ws.order`: where the fairness floor needs a protected
+/// pick, the best among protected candidates first, and freely only when none remains; in each
+/// pass, when no candidate qualifies (windowed DPP with no candidate adding a direction), the
+/// best remaining by score, recorded in `sel.exhausted_at`. `None` when nothing is left.
+#[inline(always)]
+pub(super) fn choose(
+    input: &RerankInput,
+    params: &Params,
+    ws: &mut Workspace,
+    gain: Gain,
+    sel: &mut Selection,
+    mut residual: impl FnMut(&mut Workspace, usize, Option<f64>) -> Option<f64>,
+) -> Option<usize> {
+    for r in passes(ws.must_protect(sel.indices.len())) {
+        if let Some((_, at)) = best_gain(input, params, ws, gain, r, &mut residual) {
+            return Some(at);
+        }
+        let fallback = (0..input.len())
+            .filter(|&i| eligible(input, params, ws, i, r))
+            .min_by(|&a, &b| by_score(input.scores(), a, b));
+        if let Some(i) = fallback {
+            sel.exhausted_at.get_or_insert(sel.indices.len());
+            return ws.order.iter().position(|&o| o == i);
+        }
+    }
+    None
 }
 
 /// The candidate with the largest gain among those eligible (protected only when `restrict`),

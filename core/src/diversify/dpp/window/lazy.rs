@@ -49,8 +49,8 @@ use pulp::Simd;
 
 use super::super::basis::{dot, push_basis_vector};
 use super::super::EPSILON;
-use super::{best_gain, surely_below, Gain};
-use crate::diversify::{eligible, passes, take, Workspace};
+use super::{choose, surely_below, Gain};
+use crate::diversify::{take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
 /// Absolute slack added to a stale bound on `d_i²` before it may rule a candidate out: far above
@@ -123,23 +123,8 @@ pub(super) fn run<S: Simd>(
         if ws.cancelled() {
             break;
         }
-        let restrict = ws.must_protect(sel.indices.len());
-        let mut chosen = None;
-        for r in passes(restrict) {
-            let found =
-                best_gain(input, params, ws, gain, r, |ws, rank, floor| st.residual(input, ws, rank, floor));
-            if let Some((_, rank)) = found {
-                chosen = Some(rank);
-                break;
-            }
-            // No candidate qualified: windowed DPP's step goes by score, which is rank order.
-            if let Some(rank) = (0..n).find(|&rank| eligible(input, params, ws, ws.order[rank], r)) {
-                sel.exhausted_at.get_or_insert(sel.indices.len());
-                chosen = Some(rank);
-                break;
-            }
-        }
-        let Some(rank) = chosen else { break };
+        let residual = |ws: &mut Workspace, rank, floor| st.residual(input, ws, rank, floor);
+        let Some(rank) = choose(input, params, ws, gain, &mut sel, residual) else { break };
         let d2 = st.residual(input, ws, rank, None).unwrap_or(0.0);
         take(input, ws, &mut sel, ws.order[rank], d2);
         if sel.indices.len() < m {
