@@ -59,6 +59,10 @@ pub enum Command {
         /// Config file whose slices serve the requests (default: the embedded config).
         #[arg(long)]
         config: Option<PathBuf>,
+        /// Item catalog (Parquet or Arrow IPC) for candidates sent without embeddings; replaces
+        /// the config's [catalog] path.
+        #[arg(long)]
+        catalog: Option<PathBuf>,
     },
     /// Write a demo corpus of JSONL requests (an invented outdoor-gear shop), deterministic per seed.
     Sample {
@@ -83,6 +87,10 @@ pub enum Command {
         /// Print one small request, for a first curl.
         #[arg(long)]
         one: bool,
+        /// Write the shop's items to FILE as an item catalog (Parquet), and requests that carry
+        /// ids and scores only.
+        #[arg(long, value_name = "FILE")]
+        catalog: Option<PathBuf>,
         /// Output file, or - for stdout.
         #[arg(long, default_value = "-")]
         output: String,
@@ -110,6 +118,9 @@ pub enum Command {
         /// Directory for frontier.csv and frontier.svg.
         #[arg(long, default_value = "replay-out")]
         out: PathBuf,
+        /// Item catalog (Parquet or Arrow IPC) for logged candidates without embeddings.
+        #[arg(long, value_name = "FILE")]
+        catalog: Option<PathBuf>,
         /// Choose per algorithm the most diverse lambda within a bound, e.g. "ndcg>=0.95*baseline"
         /// (metrics: ndcg, recall, ndcg_reachable, recall_reachable,
         /// relevance_retained), and print a slice config for it.

@@ -49,6 +49,24 @@ fn load_config(path: Option<std::path::PathBuf>) -> anyhow::Result<Config> {
     source.load(&Default::default()).with_context(|| format!("invalid config in {}", source.describe()))
 }
 
+/// An engine over `config` with its item catalog: `catalog` when given, else the config's own.
+fn engine_with_catalog(mut config: Config, catalog: Option<std::path::PathBuf>) -> anyhow::Result<Engine> {
+    if catalog.is_some() {
+        config.catalog = catalog;
+    }
+    let loaded = ConfigSource::load_catalog(&config).context("loading the item catalog")?;
+    if let Some(c) = &loaded {
+        eprintln!(
+            "medley: item catalog {} ({} items, d = {}, version {})",
+            c.path().display(),
+            c.len(),
+            c.dim(),
+            c.version()
+        );
+    }
+    Ok(Engine::new(config, 1).with_catalog(loaded))
+}
+
 /// `-` is standard output; anything else a file to create.
 fn open_output(path: &str) -> anyhow::Result<Box<dyn Write>> {
     Ok(if path == "-" {
@@ -69,10 +87,10 @@ fn run(command: Command) -> anyhow::Result<()> {
                 .context("starting the runtime")?;
             runtime.block_on(serve_main(source))
         }
-        Command::Rerank { input, output, config } => {
+        Command::Rerank { input, output, config, catalog } => {
             let config = load_config(config)?;
             let pool = Pool::new(config.server.pool_threads, 0).context("starting the pool")?;
-            let engine = Engine::new(config, 1);
+            let engine = engine_with_catalog(config, catalog)?;
             let mut reader: Box<dyn std::io::BufRead> = if input == "-" {
                 Box::new(BufReader::new(std::io::stdin().lock()))
             } else {
@@ -85,7 +103,7 @@ fn run(command: Command) -> anyhow::Result<()> {
             eprintln!("{summary}");
             Ok(())
         }
-        Command::Sample { requests, candidates, dim, seed, with_clicks, b64, one, output } => {
+        Command::Sample { requests, candidates, dim, seed, with_clicks, b64, one, catalog, output } => {
             let spec = medley::offline::sample::SampleSpec {
                 requests: if one { 1 } else { requests },
                 candidates: candidates.unwrap_or(if one { 6 } else { 200 }),
@@ -95,9 +113,13 @@ fn run(command: Command) -> anyhow::Result<()> {
                 b64,
             };
             let mut writer = open_output(&output)?;
-            medley::offline::sample::write(&spec, &mut writer).context("writing the corpus")
+            match catalog {
+                None => medley::offline::sample::write(&spec, &mut writer).context("writing the corpus"),
+                Some(path) => medley::offline::sample::write_with_catalog(&spec, &path, &mut writer)
+                    .with_context(|| format!("writing the corpus and the catalog {}", path.display())),
+            }
         }
-        Command::Replay { input, algorithms, lambdas, k, windows, out, pick } => {
+        Command::Replay { input, algorithms, lambdas, k, windows, out, catalog, pick } => {
             let algorithms = algorithms
                 .split(',')
                 .map(|name| {
@@ -117,7 +139,7 @@ fn run(command: Command) -> anyhow::Result<()> {
                 anyhow::bail!("--windows: {w} is outside 2..=1000");
             }
             // Replay validates on an unlocked default slice with the embedded limits.
-            let engine = Engine::new(Config::embedded_default(), 1);
+            let engine = engine_with_catalog(Config::embedded_default(), catalog)?;
             let file = std::fs::File::open(&input).with_context(|| format!("opening {}", input.display()))?;
             let corpus = medley::offline::replay::read_corpus(&engine, &mut BufReader::new(file))
                 .context("reading the corpus")?;
@@ -135,7 +157,17 @@ fn run(command: Command) -> anyhow::Result<()> {
         }
         Command::CheckConfig { file } => {
             let config = load_config(Some(file))?;
+            let catalog = ConfigSource::load_catalog(&config).context("invalid item catalog")?;
             print!("{}", medley::serve::config::describe(&config));
+            if let Some(c) = catalog {
+                println!(
+                    "catalog: {} ({} items, d = {}, version {})",
+                    c.path().display(),
+                    c.len(),
+                    c.dim(),
+                    c.version()
+                );
+            }
             Ok(())
         }
     }

@@ -87,17 +87,42 @@ pub enum RequestError {
         /// Candidate index.
         index: usize,
     },
+    /// A candidate without an embedding whose id the item catalog does not hold, for an
+    /// algorithm that needs embeddings (and a slice whose `unknown_items` is `refuse`).
+    #[error(
+        "candidate {index}: id {id:?} is not in the item catalog, and {algorithm} needs its embedding; send \"embedding\", or set unknown_items = \"drop\" on the slice"
+    )]
+    UnknownItem {
+        /// Candidate index, as sent.
+        index: usize,
+        /// The id.
+        id: String,
+        /// The algorithm that needs the embedding.
+        algorithm: &'static str,
+    },
     /// A value check on the slate or its parameters.
     #[error("{error}")]
     Invalid {
         /// The check that failed.
         error: ValidationError,
-        /// Whether the failing candidate sent its embedding as base64 (for the path).
-        b64: bool,
+        /// Where the failing candidate's embedding came from (for the path).
+        sent: Sent,
     },
     /// A kernel refused validated input: a bug between validation and kernel.
     #[error("internal error: {0}")]
     Kernel(#[from] KernelError),
+}
+
+/// Where a candidate's embedding came from: the path of an error about it names that field.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Sent {
+    /// `embedding` (or nothing: the path still names `embedding`).
+    #[default]
+    Json,
+    /// `embedding_b64`.
+    Base64,
+    /// The item catalog's row for the candidate's `id`.
+    Catalog,
 }
 
 impl RequestError {
@@ -113,6 +138,7 @@ impl RequestError {
             Self::UnknownAlgorithm { .. } => "unknown_algorithm",
             Self::InvalidBase64 { .. } => "invalid_base64",
             Self::ConflictingEmbedding { .. } => "conflicting_embedding",
+            Self::UnknownItem { .. } => "unknown_item",
             Self::Invalid { error, .. } => match error {
                 ValidationError::TooManyCandidates { .. } => "too_many_candidates",
                 ValidationError::TooLong { .. } => "too_long",
@@ -136,8 +162,13 @@ impl RequestError {
     /// The JSON path of the field at fault, when one field is.
     #[must_use]
     pub fn path(&self) -> Option<String> {
-        let embedding = |index: usize, b64: bool| {
-            Some(format!("candidates[{index}].{}", if b64 { "embedding_b64" } else { "embedding" }))
+        let embedding = |index: usize, source: Sent| {
+            let field = match source {
+                Sent::Json => "embedding",
+                Sent::Base64 => "embedding_b64",
+                Sent::Catalog => "id",
+            };
+            Some(format!("candidates[{index}].{field}"))
         };
         match self {
             Self::MalformedJson { .. } | Self::Kernel(_) => None,
@@ -147,22 +178,23 @@ impl RequestError {
             Self::UnknownSlice { .. } => Some("slice".into()),
             Self::SliceLocked { field, .. } => Some((*field).into()),
             Self::UnknownAlgorithm { .. } => Some("algorithm".into()),
-            Self::InvalidBase64 { index, .. } => embedding(*index, true),
+            Self::InvalidBase64 { index, .. } => embedding(*index, Sent::Base64),
             Self::ConflictingEmbedding { index } => Some(format!("candidates[{index}]")),
-            Self::Invalid { error, b64 } => match *error {
+            Self::UnknownItem { index, .. } => Some(format!("candidates[{index}].id")),
+            Self::Invalid { error, sent } => match *error {
                 ValidationError::TooManyCandidates { .. } => Some("candidates".into()),
                 ValidationError::DuplicateId { index, .. } => Some(format!("candidates[{index}].id")),
                 ValidationError::TooLong { index, field, .. } => {
                     Some(format!("candidates[{index}].{}", field.name()))
                 }
-                ValidationError::NonFinite { index, field: Field::Embedding } => embedding(index, *b64),
+                ValidationError::NonFinite { index, field: Field::Embedding } => embedding(index, *sent),
                 ValidationError::NonFinite { index, field } => {
                     Some(format!("candidates[{index}].{}", field.name()))
                 }
                 ValidationError::MissingEmbedding { index, .. }
                 | ValidationError::DimensionMismatch { index, .. }
                 | ValidationError::DimensionOutOfRange { index, .. }
-                | ValidationError::ZeroNorm { index } => embedding(index, *b64),
+                | ValidationError::ZeroNorm { index } => embedding(index, *sent),
                 ValidationError::KOutOfRange { .. } => Some("k".into()),
                 ValidationError::LambdaOutOfRange { .. } => Some("lambda".into()),
                 ValidationError::WindowOutOfRange { .. } => Some("window".into()),

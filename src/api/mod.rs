@@ -7,4 +7,4 @@
 mod error;
 pub mod wire;
 
-pub use error::RequestError;
+pub use error::{RequestError, Sent};

@@ -224,6 +224,14 @@ pub struct RerankResponse {
     /// candidates); absent otherwise.
     #[serde(skip_serializing_if = "std::ops::Not::not")]
     pub fairness_shortfall: bool,
+    /// Version of the item catalog that served the request (`"{rows}-{digest}"`); absent when no
+    /// catalog is configured.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub catalog_version: Option<String>,
+    /// Candidates left out because the catalog does not know them (`unknown_items = "drop"`);
+    /// present whenever that policy and a catalog served the request, absent otherwise.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub dropped: Option<u64>,
     /// How diverse the slate is.
     pub diversity: Diversity,
 }

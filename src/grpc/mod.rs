@@ -232,6 +232,8 @@ fn to_proto(r: wire::RerankResponse) -> proto::RerankResponse {
             protected_share: r.diversity.protected_share,
         }),
         fairness_shortfall: r.fairness_shortfall,
+        catalog_version: r.catalog_version,
+        dropped: r.dropped,
     }
 }
 

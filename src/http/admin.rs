@@ -85,6 +85,12 @@ async fn config(State(state): State<AppState>) -> Response {
     json(&serde_json::json!({
         "config_generation": engine.generation(),
         "config_digest": engine.digest(),
+        "catalog_version": engine.catalog().map(|c| c.version()),
+        "catalog": engine.catalog().map(|c| serde_json::json!({
+            "path": c.path().display().to_string(),
+            "items": c.len(),
+            "dim": c.dim(),
+        })),
         "source": source.describe(),
         "overlay": source.overlay.as_ref().map(|p| p.display().to_string()),
         "runtime_slices": state.reloader.runtime_slices(),

@@ -145,6 +145,9 @@ pub(crate) async fn serve_one(
     if r.fairness_shortfall {
         state.metrics.fairness_shortfall.with_label_values(&[&r.slice]).inc();
     }
+    if let Some(dropped) = r.dropped.filter(|&d| d > 0) {
+        state.metrics.unknown_items.with_label_values(&[&r.slice]).inc_by(dropped);
+    }
     Ok(served)
 }
 
@@ -398,12 +401,15 @@ pub(super) async fn readyz(State(state): State<AppState>) -> Response {
     let engine = state.engine.load();
     let generation = engine.generation();
     let status = if state.is_draining() { "draining" } else { "ready" };
-    let body = serde_json::json!({
+    let mut body = serde_json::json!({
         "status": status,
         "config_generation": generation,
         "config_digest": engine.digest(),
         "pool_threads": state.pool.threads(),
     });
+    if let Some(catalog) = engine.catalog() {
+        body["catalog_version"] = catalog.version().into();
+    }
     let code = if state.is_draining() { StatusCode::SERVICE_UNAVAILABLE } else { StatusCode::OK };
     json_response(code, body.to_string().into_bytes())
 }

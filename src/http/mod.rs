@@ -44,6 +44,9 @@ pub enum StartError {
     /// The config (or the overlay) is invalid.
     #[error("invalid config: {0}")]
     Config(#[from] ConfigError),
+    /// The item catalog the config names is refused.
+    #[error("invalid item catalog: {0}")]
+    Catalog(#[from] crate::serve::catalog::CatalogError),
     /// The kernel pool could not start its threads.
     #[error("starting the kernel pool: {0}")]
     Pool(#[from] rayon::ThreadPoolBuildError),
@@ -100,8 +103,10 @@ impl AppState {
         let shadow = ShadowRunner::start(server.shadow_queue, metrics.clone())?;
         let max_in_flight = server.max_in_flight;
         let body_budget = body::BodyBudget::new(server.max_inflight_body_bytes);
-        let first = Engine::new(config, 1);
+        let catalog = ConfigSource::load_catalog(&config)?;
+        let first = Engine::new(config, 1).with_catalog(catalog);
         metrics.set_config(1, first.digest());
+        metrics.set_catalog(first.catalog().map(|c| &**c));
         let engine = Arc::new(ArcSwap::from_pointee(first));
         metrics.pool_threads.set(pool.threads() as i64);
         let reloader = Arc::new(Reloader::new(source, engine.clone(), metrics.clone(), file, runtime));

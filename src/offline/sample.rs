@@ -16,6 +16,8 @@
 
 use std::io::Write;
 
+use std::sync::Arc;
+
 use serde_json::{json, Value};
 
 /// Categories of the invented shop, most popular first, with id prefixes and popularity weights.
@@ -112,6 +114,25 @@ fn dot(a: &[f64], b: &[f64]) -> f64 {
 /// # Errors
 /// Only I/O errors on `out`.
 pub fn write(spec: &SampleSpec, out: &mut dyn Write) -> std::io::Result<()> {
+    emit(spec, out, None)
+}
+
+/// Writes the shop's items to `catalog` as an item catalog (Parquet: `id` utf8, `embedding`
+/// fixed-size list of float32, `category` utf8), then `spec.requests` requests to `out` that
+/// carry ids and scores only (no embeddings, no categories), for a server or `medley rerank` that
+/// serves with that catalog. The requests are otherwise those [`write`] writes for the same spec.
+///
+/// # Errors
+/// I/O errors on `out` or the catalog file.
+pub fn write_with_catalog(
+    spec: &SampleSpec,
+    catalog: &std::path::Path,
+    out: &mut dyn Write,
+) -> std::io::Result<()> {
+    emit(spec, out, Some(catalog))
+}
+
+fn emit(spec: &SampleSpec, out: &mut dyn Write, catalog: Option<&std::path::Path>) -> std::io::Result<()> {
     let mut rng = Rng::new(spec.seed);
     let d = spec.dim.max(1);
     let centroids: Vec<Vec<f64>> = (0..CATEGORIES.len())
@@ -123,8 +144,11 @@ pub fn write(spec: &SampleSpec, out: &mut dyn Write) -> std::io::Result<()> {
         .collect();
     let popularity: Vec<f64> = CATEGORIES.iter().map(|c| c.2).collect();
     let catalogue = Catalogue::new(spec, &centroids, &popularity, &mut rng);
+    if let Some(path) = catalog {
+        catalogue.write_parquet(path)?;
+    }
     for r in 0..spec.requests {
-        let line = request(spec, r, &centroids, &popularity, &catalogue, &mut rng);
+        let line = request(spec, r, &centroids, &popularity, &catalogue, &mut rng, catalog.is_some());
         serde_json::to_writer(&mut *out, &line)?;
         out.write_all(b"\n")?;
     }
@@ -161,6 +185,36 @@ impl Catalogue {
         }
         cat
     }
+
+    /// The items as an item catalog in Parquet (snappy).
+    fn write_parquet(&self, path: &std::path::Path) -> std::io::Result<()> {
+        use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
+        use arrow_schema::{DataType, Field};
+        let d = self.embedding.first().map_or(1, Vec::len);
+        let values: Float32Array = self.embedding.iter().flatten().map(|&x| x as f32).collect();
+        let item = Arc::new(Field::new("item", DataType::Float32, false));
+        let dim = i32::try_from(d).map_err(std::io::Error::other)?;
+        let embedding =
+            FixedSizeListArray::try_new(item, dim, Arc::new(values), None).map_err(std::io::Error::other)?;
+        let columns: Vec<(&str, ArrayRef)> = vec![
+            ("id", Arc::new(StringArray::from_iter_values(&self.id))),
+            ("embedding", Arc::new(embedding)),
+            (
+                "category",
+                Arc::new(StringArray::from_iter_values(self.category.iter().map(|&c| CATEGORIES[c].0))),
+            ),
+        ];
+        let batch = RecordBatch::try_from_iter(columns).map_err(std::io::Error::other)?;
+        let props = parquet::file::properties::WriterProperties::builder()
+            .set_compression(parquet::basic::Compression::SNAPPY)
+            .build();
+        let file = std::fs::File::create(path)?;
+        let mut writer = parquet::arrow::ArrowWriter::try_new(file, batch.schema(), Some(props))
+            .map_err(std::io::Error::other)?;
+        writer.write(&batch).map_err(std::io::Error::other)?;
+        writer.close().map_err(std::io::Error::other)?;
+        Ok(())
+    }
 }
 
 fn request(
@@ -170,6 +224,7 @@ fn request(
     popularity: &[f64],
     catalogue: &Catalogue,
     rng: &mut Rng,
+    ids_only: bool,
 ) -> Value {
     let d = centroids[0].len();
     // The user: a favourite category, a second interest, and some idiosyncrasy.
@@ -206,10 +261,14 @@ fn request(
         let (name, _, _) = CATEGORIES[cat];
         let id = catalogue.id[item].clone();
         let embedding: Vec<f32> = e.iter().map(|&x| x as f32).collect();
-        let mut c = json!({"id": id, "score": (score * 1e6).round() / 1e6, "category": name});
-        if spec.b64 {
+        let mut c = json!({"id": id, "score": (score * 1e6).round() / 1e6});
+        if ids_only {
+            // The catalog has the embedding and the category.
+        } else if spec.b64 {
+            c["category"] = json!(name);
             c["embedding_b64"] = json!(crate::api::wire::encode_b64_embedding(&embedding));
         } else {
+            c["category"] = json!(name);
             c["embedding"] = json!(embedding);
         }
         candidates.push(c);

@@ -11,26 +11,42 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
 use crate::api::wire::{decode_b64_embedding, Diversity, Item, RerankRequest, RerankResponse};
-use crate::api::RequestError;
-use crate::serve::config::{Config, Shadow, DEFAULT_SLICE};
+use crate::api::{RequestError, Sent};
+use crate::serve::catalog::Catalog;
+use crate::serve::config::{Config, Shadow, UnknownItems, DEFAULT_SLICE};
 use medley_core::diversify::{self, Diversifier, Workspace};
 use medley_core::measures;
 use medley_core::model::{CandidateInput, Params, RerankInput, Selection, ValidationError, MAX_LABEL_BYTES};
 
-/// A validated config and its generation number: what one request reads at its start.
+/// A validated config, its generation number and the item catalog it serves with: what one
+/// request reads at its start, so one request sees one config and one catalog.
 #[derive(Debug, Clone)]
 pub struct Engine {
     config: Config,
     generation: u64,
     digest: String,
+    catalog: Option<Arc<Catalog>>,
 }
 
 impl Engine {
-    /// Wraps a validated config.
+    /// Wraps a validated config, without a catalog.
     #[must_use]
     pub fn new(config: Config, generation: u64) -> Self {
         let digest = config.digest();
-        Self { config, generation, digest }
+        Self { config, generation, digest, catalog: None }
+    }
+
+    /// The same engine serving with `catalog`.
+    #[must_use]
+    pub fn with_catalog(mut self, catalog: Option<Arc<Catalog>>) -> Self {
+        self.catalog = catalog;
+        self
+    }
+
+    /// The item catalog requests look ids up in, when one is configured.
+    #[must_use]
+    pub fn catalog(&self) -> Option<&Arc<Catalog>> {
+        self.catalog.as_ref()
     }
 
     /// [`Config::digest`] of the config served: equal across replicas that serve the same one.
@@ -97,7 +113,7 @@ impl Engine {
         let k = request.k.unwrap_or(st.k);
         let params = Params::new(k, request.lambda.unwrap_or(st.lambda), limits)
             .and_then(|p| p.with_window(request.window.or(st.window)))
-            .map_err(|error| RequestError::Invalid { error, b64: false })?
+            .map_err(|error| RequestError::Invalid { error, sent: Sent::Json })?
             .with_max_per_category(st.max_per_category);
         let profile: Option<Vec<(String, f64)>> = match request.profile {
             Some(map) => Some(map.into_iter().collect()),
@@ -112,7 +128,7 @@ impl Engine {
                 got: request.candidates.len(),
                 max: limits.max_candidates,
             };
-            return Err(RequestError::Invalid { error, b64: false });
+            return Err(RequestError::Invalid { error, sent: Sent::Json });
         }
         let fairness = request.fairness.or_else(|| slice.fairness.clone());
         if let Some(f) = &fairness {
@@ -124,46 +140,98 @@ impl Engine {
                 });
             }
         }
-        let mut protected = Vec::with_capacity(if fairness.is_some() { request.candidates.len() } else { 0 });
-        let mut b64 = Vec::with_capacity(request.candidates.len());
-        let mut candidates = Vec::with_capacity(request.candidates.len());
+        let catalog = self.catalog.as_deref();
+        let needs_embeddings = algorithm.needs_embeddings();
+        let n_sent = request.candidates.len();
+        let mut protected = Vec::with_capacity(if fairness.is_some() { n_sent } else { 0 });
+        // Per kept candidate: where its embedding came from, and its index as sent.
+        let mut sources = Vec::with_capacity(n_sent);
+        let mut sent_index = Vec::with_capacity(n_sent);
+        let mut unresolved = false;
+        let mut candidates = Vec::with_capacity(n_sent);
         for (index, c) in request.candidates.into_iter().enumerate() {
-            b64.push(c.embedding_b64.is_some());
             if let Some(got) = c.group.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
                 return Err(RequestError::GroupTooLong { index, got });
+            }
+            let (mut embedding, mut source) = match (c.embedding, c.embedding_b64) {
+                (Some(_), Some(_)) => return Err(RequestError::ConflictingEmbedding { index }),
+                (Some(e), None) => (Some(e), Sent::Json),
+                (None, Some(text)) => (
+                    Some(
+                        decode_b64_embedding(&text)
+                            .map_err(|reason| RequestError::InvalidBase64 { index, reason })?,
+                    ),
+                    Sent::Base64,
+                ),
+                (None, None) => (None, Sent::Json),
+            };
+            let mut category = c.category;
+            if let Some(catalog) = catalog.filter(|_| embedding.is_none() || category.is_none()) {
+                match catalog.get(&c.id) {
+                    Some(item) => {
+                        if embedding.is_none() {
+                            embedding = Some(item.embedding.to_vec());
+                            source = Sent::Catalog;
+                        }
+                        if category.is_none() {
+                            category = item.category.map(str::to_owned);
+                        }
+                    }
+                    None if embedding.is_none() && needs_embeddings => match st.unknown_items {
+                        UnknownItems::Refuse => {
+                            return Err(RequestError::UnknownItem {
+                                index,
+                                id: c.id,
+                                algorithm: algorithm.name(),
+                            })
+                        }
+                        UnknownItems::Drop => continue,
+                    },
+                    None => unresolved |= embedding.is_none(),
+                }
             }
             if let Some(f) = &fairness {
                 protected.push(c.group.as_deref() == Some(f.protected.as_str()));
             }
-            let embedding = match (c.embedding, c.embedding_b64) {
-                (Some(_), Some(_)) => return Err(RequestError::ConflictingEmbedding { index }),
-                (Some(e), None) => Some(e),
-                (None, Some(text)) => Some(
-                    decode_b64_embedding(&text)
-                        .map_err(|reason| RequestError::InvalidBase64 { index, reason })?,
-                ),
-                (None, None) => None,
-            };
-            candidates.push(CandidateInput { id: c.id, score: c.score, category: c.category, embedding });
+            sources.push(source);
+            sent_index.push(index);
+            candidates.push(CandidateInput { id: c.id, score: c.score, category, embedding });
         }
+        // An algorithm that does not compare embeddings serves a slate whose ids the catalog
+        // partly knows: the catalog's rows are then left out rather than refusing the slate for
+        // the candidates it lacks (the diversity measures skip the embedding distance).
+        if unresolved {
+            for (c, source) in candidates.iter_mut().zip(&sources) {
+                if *source == Sent::Catalog {
+                    c.embedding = None;
+                }
+            }
+        }
+        let dropped = n_sent - candidates.len();
+        let as_sent = |error: ValidationError| {
+            let source = error_index(&error).and_then(|i| sources.get(i).copied()).unwrap_or_default();
+            let error = if dropped == 0 {
+                error
+            } else {
+                error.map_index(|i| sent_index.get(i).copied().unwrap_or(i))
+            };
+            RequestError::Invalid { error, sent: source }
+        };
         // A shadow that compares embeddings can only run when the slate has them.
         let shadow = slice.shadow.filter(|sh| sampled(sh.sample_rate));
-        let input = RerankInput::new(candidates, st.score_transform, algorithm.needs_embeddings(), limits)
-            .map_err(|error| {
-                let b64 = error_index(&error).and_then(|i| b64.get(i).copied()).unwrap_or(false);
-                RequestError::Invalid { error, b64 }
-            })?;
+        let input =
+            RerankInput::new(candidates, st.score_transform, needs_embeddings, limits).map_err(as_sent)?;
         let input = match profile {
             None => input,
-            Some(weights) => {
-                input.with_profile(weights).map_err(|error| RequestError::Invalid { error, b64: false })?
-            }
+            Some(weights) => input
+                .with_profile(weights)
+                .map_err(|error| RequestError::Invalid { error, sent: Sent::Json })?,
         };
         let input = match fairness {
             None => input,
             Some(f) => input
                 .with_fairness(protected, f.share, f.alpha)
-                .map_err(|error| RequestError::Invalid { error, b64: false })?,
+                .map_err(|error| RequestError::Invalid { error, sent: Sent::Json })?,
         };
         // Likewise a shadow that calibrates needs a profile.
         let shadow = shadow.filter(|sh| !sh.algorithm.needs_embeddings() || input.embeddings().is_some());
@@ -178,6 +246,8 @@ impl Engine {
             input,
             generation: self.generation,
             shadow,
+            catalog_version: catalog.map(|c| c.version().to_owned()),
+            dropped: (catalog.is_some() && st.unknown_items == UnknownItems::Drop).then_some(dropped as u64),
         })
     }
 }
@@ -228,6 +298,10 @@ pub struct Prepared {
     pub generation: u64,
     /// The slice's shadow, when this request is in its sample.
     pub shadow: Option<Shadow>,
+    /// Version of the catalog that served it.
+    pub catalog_version: Option<String>,
+    /// Candidates dropped as unknown to the catalog (`Some` under `unknown_items = "drop"`).
+    pub dropped: Option<u64>,
 }
 
 impl Prepared {
@@ -300,6 +374,8 @@ impl Reranked {
             items,
             fairness_shortfall: medley_core::fairness::shortfall(&p.input, &self.selection.indices)
                 .unwrap_or(false),
+            catalog_version: p.catalog_version.clone(),
+            dropped: p.dropped,
             diversity: self.diversity(),
         }
     }

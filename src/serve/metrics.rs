@@ -70,6 +70,17 @@ pub struct Metrics {
     /// `medley_config_reload_unchanged_total{trigger}`: reloads that validated to the config
     /// already serving (same digest), so nothing was swapped.
     pub config_reload_unchanged: IntCounterVec,
+    /// `medley_catalog_reloads_total{trigger}`: item catalogs swapped in, by trigger.
+    pub catalog_reloads: IntCounterVec,
+    /// `medley_catalog_reload_failures_total{trigger}`: refused catalogs (the old one kept serving).
+    pub catalog_reload_failures: IntCounterVec,
+    /// `medley_catalog_info{version}`: 1 for the version of the catalog being served (one series;
+    /// none without a catalog).
+    pub catalog_info: IntGaugeVec,
+    /// `medley_catalog_items`: items in the catalog being served (0 without one).
+    pub catalog_items: IntGauge,
+    /// `medley_unknown_items_total{slice}`: candidates dropped because the catalog lacks them.
+    pub unknown_items: IntCounterVec,
     /// `medley_shadow_runs_total{slice}`.
     pub shadow_runs: IntCounterVec,
     /// `medley_shadow_dropped_total{slice}`: shadow jobs dropped because the queue was full.
@@ -206,6 +217,27 @@ impl Metrics {
             "Reloads that found the configuration already serving (nothing swapped), by trigger.",
             "trigger",
         );
+        let catalog_reloads =
+            counter("medley_catalog_reloads_total", "Item catalogs swapped in, by trigger.", "trigger");
+        let catalog_reload_failures = counter(
+            "medley_catalog_reload_failures_total",
+            "Item catalogs refused (the previous one kept serving), by trigger.",
+            "trigger",
+        );
+        let catalog_info = must(IntGaugeVec::new(
+            Opts::new(
+                "medley_catalog_info",
+                "1 for the version (rows and FNV-1a 64 of the file) of the item catalog being served.",
+            ),
+            &["version"],
+        ));
+        let catalog_items =
+            must(IntGauge::new("medley_catalog_items", "Items in the catalog being served (0 without one)."));
+        let unknown_items = counter(
+            "medley_unknown_items_total",
+            "Candidates left out because the item catalog lacks them (unknown_items = \"drop\"), by slice.",
+            "slice",
+        );
         let fairness_shortfall = counter(
             "medley_fairness_shortfall_total",
             "Served slates whose fairness floor could not be met (too few protected candidates).",
@@ -276,6 +308,11 @@ impl Metrics {
         reg(Box::new(config_reloads.clone()));
         reg(Box::new(config_reload_failures.clone()));
         reg(Box::new(config_reload_unchanged.clone()));
+        reg(Box::new(catalog_reloads.clone()));
+        reg(Box::new(catalog_reload_failures.clone()));
+        reg(Box::new(catalog_info.clone()));
+        reg(Box::new(catalog_items.clone()));
+        reg(Box::new(unknown_items.clone()));
         reg(Box::new(fairness_shortfall.clone()));
         reg(Box::new(shadow_runs.clone()));
         reg(Box::new(shadow_dropped.clone()));
@@ -307,6 +344,11 @@ impl Metrics {
             config_reloads,
             config_reload_failures,
             config_reload_unchanged,
+            catalog_reloads,
+            catalog_reload_failures,
+            catalog_info,
+            catalog_items,
+            unknown_items,
             fairness_shortfall,
             shadow_runs,
             shadow_dropped,
@@ -372,6 +414,15 @@ impl Metrics {
         self.config_generation.set(i64::try_from(generation).unwrap_or(i64::MAX));
         self.config_info.reset();
         self.config_info.with_label_values(&[digest]).set(1);
+    }
+
+    /// Records the catalog now served (`None`: no catalog).
+    pub fn set_catalog(&self, catalog: Option<&crate::serve::catalog::Catalog>) {
+        self.catalog_info.reset();
+        if let Some(c) = catalog {
+            self.catalog_info.with_label_values(&[c.version()]).set(1);
+        }
+        self.catalog_items.set(catalog.map_or(0, |c| i64::try_from(c.len()).unwrap_or(i64::MAX)));
     }
 
     /// The Prometheus text exposition (format 0.0.4).

@@ -13,6 +13,7 @@
 //! - [`metrics`]: the Prometheus registry and every handle;
 //! - [`shutdown`]: the SIGINT/SIGTERM future and the token background tasks hold.
 
+pub mod catalog;
 pub mod config;
 pub mod engine;
 pub mod metrics;

@@ -31,6 +31,7 @@ use std::time::Duration;
 
 use arc_swap::ArcSwap;
 
+use crate::serve::catalog::{Catalog, CatalogError};
 use crate::serve::config::{Config, ConfigError, RawConfig, RawSlice, DEFAULT_TOML};
 use crate::serve::engine::Engine;
 use crate::serve::metrics::Metrics;
@@ -162,8 +163,31 @@ impl ConfigSource {
         if let Some(a) = self.grpc_listen {
             config.server.grpc_listen = a;
         }
+        if let (Some(catalog), Some(file)) = (&config.catalog, &self.file) {
+            if catalog.is_relative() {
+                let dir = file.parent().unwrap_or_else(|| Path::new(""));
+                config.catalog = Some(dir.join(catalog));
+            }
+        }
         Ok(config)
     }
+
+    /// Loads the item catalog `config` names, if any, as `medley check-config` and a start do.
+    ///
+    /// # Errors
+    /// The [`CatalogError`] naming the row and column at fault.
+    pub fn load_catalog(config: &Config) -> Result<Option<Arc<Catalog>>, CatalogError> {
+        config
+            .catalog
+            .as_deref()
+            .map(|path| Catalog::load(path, config.server.limits.max_dim).map(Arc::new))
+            .transpose()
+    }
+}
+
+/// A refused catalog as the config error a reload reports (its field is `catalog.path`).
+fn catalog_refused(e: &CatalogError) -> ConfigError {
+    ConfigError::Invalid { field: "catalog.path".into(), message: e.to_string() }
 }
 
 /// The outcome of a reload.
@@ -224,7 +248,13 @@ pub struct Reloader {
 struct Layers {
     file: RawConfig,
     runtime: BTreeMap<String, RawSlice>,
+    /// The catalog the last catalog swap replaced, until the requests holding it finish.
+    retired: Option<std::sync::Weak<Catalog>>,
 }
+
+/// How long a catalog load waits for the catalog retired by the previous swap to be released
+/// before it loads anyway (requests hold it at most a deadline; a stuck one must not block reloads).
+const RETIRED_WAIT: Duration = Duration::from_secs(30);
 
 impl Reloader {
     /// A reloader over `engine`, whose current config was built from `file` with `runtime`.
@@ -236,7 +266,7 @@ impl Reloader {
         file: RawConfig,
         runtime: BTreeMap<String, RawSlice>,
     ) -> Self {
-        Self { source, engine, metrics, layers: Mutex::new(Layers { file, runtime }) }
+        Self { source, engine, metrics, layers: Mutex::new(Layers { file, runtime, retired: None }) }
     }
 
     fn layers(&self) -> std::sync::MutexGuard<'_, Layers> {
@@ -249,17 +279,61 @@ impl Reloader {
         &self.source
     }
 
+    /// The item catalog's file as the live config names it.
+    #[must_use]
+    pub fn catalog_file(&self) -> Option<PathBuf> {
+        self.engine.load().config().catalog.clone()
+    }
+
     /// Names of the runtime slices.
     #[must_use]
     pub fn runtime_slices(&self) -> Vec<String> {
         self.layers().runtime.keys().cloned().collect()
     }
 
-    /// Swaps `config` in as the next generation, unless it serves exactly what the live engine
-    /// serves (same digest), which is no change at all.
-    fn store(&self, config: Config, trigger: Trigger) -> Reloaded {
+    /// The catalog `config` serves with: the live one when `config` names the same file and the
+    /// file is unchanged (size, modification time, inode) and within the new `max_dim`, else a
+    /// fresh load. A fresh load first waits (up to [`RETIRED_WAIT`]) until the catalog the
+    /// previous swap retired is released by the last request holding it, so at most two catalogs
+    /// are held at once: the live one and the one loading.
+    fn catalog_for(
+        &self,
+        config: &Config,
+        layers: &mut Layers,
+    ) -> Result<Option<Arc<Catalog>>, CatalogError> {
+        let Some(path) = config.catalog.as_deref() else { return Ok(None) };
+        let live = self.engine.load();
+        let fits = |c: &&Arc<Catalog>| c.dim() <= config.server.limits.max_dim;
+        if let Some(c) = live.catalog().filter(fits).filter(|c| c.is_current(path)) {
+            return Ok(Some(c.clone()));
+        }
+        drop(live);
+        if let Some(retired) = layers.retired.take() {
+            let started = std::time::Instant::now();
+            while retired.strong_count() > 0 && started.elapsed() < RETIRED_WAIT {
+                std::thread::sleep(Duration::from_millis(2));
+            }
+        }
+        let loaded = Catalog::load(path, config.server.limits.max_dim)?;
+        tracing::info!(catalog = %path.display(), version = loaded.version(), items = loaded.len(), "catalog loaded");
+        Ok(Some(Arc::new(loaded)))
+    }
+
+    /// Swaps `config` and `catalog` in, unless they serve exactly what the live engine serves
+    /// (same config digest, same catalog version), which is no change at all. The generation
+    /// counts config changes: a swap of the catalog alone keeps it.
+    fn store(
+        &self,
+        config: Config,
+        catalog: Option<Arc<Catalog>>,
+        trigger: Trigger,
+        layers: &mut Layers,
+    ) -> Reloaded {
         let old = self.engine.load_full();
-        if config.digest() == old.digest() {
+        let version = |c: Option<&Arc<Catalog>>| c.map(|c| c.version().to_owned());
+        let catalog_changed = version(catalog.as_ref()) != version(old.catalog());
+        let config_changed = config.digest() != old.digest();
+        if !config_changed && !catalog_changed {
             self.metrics.config_reload_unchanged.with_label_values(&[trigger.label()]).inc();
             tracing::debug!(generation = old.generation(), trigger = trigger.label(), "config unchanged");
             return Reloaded { generation: old.generation(), changed: false };
@@ -278,12 +352,21 @@ impl Reloader {
                 "listeners, pool_threads, max_in_flight, max_inflight_body_bytes, header_timeout_ms and max_connections change only on restart; keeping the running ones"
             );
         }
-        let generation = old.generation() + 1;
-        let engine = Arc::new(Engine::new(config, generation));
+        let generation = old.generation() + u64::from(config_changed);
+        let engine = Arc::new(Engine::new(config, generation).with_catalog(catalog));
+        if catalog_changed {
+            layers.retired = old.catalog().map(Arc::downgrade);
+            self.metrics.set_catalog(engine.catalog().map(|c| &**c));
+            self.metrics.catalog_reloads.with_label_values(&[trigger.label()]).inc();
+            tracing::info!(version = ?version(engine.catalog()), trigger = trigger.label(), "catalog swapped");
+        }
         self.metrics.set_config(generation, engine.digest());
         self.engine.store(engine);
-        self.metrics.config_reloads.with_label_values(&[trigger.label()]).inc();
-        tracing::info!(generation, trigger = trigger.label(), "config swapped");
+        drop(old);
+        if config_changed {
+            self.metrics.config_reloads.with_label_values(&[trigger.label()]).inc();
+            tracing::info!(generation, trigger = trigger.label(), "config swapped");
+        }
         Reloaded { generation, changed: true }
     }
 
@@ -292,12 +375,20 @@ impl Reloader {
         tracing::warn!(trigger = trigger.label(), error = %e, "config refused; the previous one keeps serving");
     }
 
-    /// Re-reads the source, validates the file alone and then with the runtime slices, and swaps
-    /// the result in when it differs from the live config.
+    fn refuse_catalog(&self, trigger: Trigger, e: &CatalogError) -> ConfigError {
+        self.metrics.catalog_reload_failures.with_label_values(&[trigger.label()]).inc();
+        tracing::warn!(trigger = trigger.label(), error = %e, "catalog refused; the previous config and catalog keep serving");
+        catalog_refused(e)
+    }
+
+    /// Re-reads the source, validates the file alone and then with the runtime slices, reloads
+    /// the item catalog when its file changed, and swaps the result in when it differs from what
+    /// is live. Config and catalog swap together or not at all.
     ///
     /// # Errors
-    /// The validation error; the old config keeps serving, and later runtime changes build on
-    /// the last file that was valid.
+    /// The validation error; the old config (and catalog) keeps serving, and later runtime
+    /// changes build on the last file that was valid. A refused catalog is reported as an error
+    /// of `catalog.path` and counted in `medley_catalog_reload_failures_total`.
     pub fn reload(&self, trigger: Trigger) -> Result<Reloaded, ConfigError> {
         let mut layers = self.layers();
         let built = self
@@ -306,8 +397,10 @@ impl Reloader {
             .and_then(|file| Ok((self.source.build(file.clone(), &layers.runtime)?, file)));
         match built {
             Ok((config, file)) => {
+                let catalog =
+                    self.catalog_for(&config, &mut layers).map_err(|e| self.refuse_catalog(trigger, &e))?;
                 layers.file = file;
-                Ok(self.store(config, trigger))
+                Ok(self.store(config, catalog, trigger, &mut layers))
             }
             Err(e) => {
                 self.refuse(trigger, &e);
@@ -356,6 +449,9 @@ impl Reloader {
                 return Err(e.into());
             }
         };
+        let catalog = self
+            .catalog_for(&config, layers)
+            .map_err(|e| SliceChangeError::Invalid(self.refuse_catalog(Trigger::Slice, &e)))?;
         let persisted = match &self.source.overlay {
             None => false,
             Some(path) => {
@@ -365,14 +461,14 @@ impl Reloader {
             }
         };
         layers.runtime = next;
-        let Reloaded { generation, changed } = self.store(config, Trigger::Slice);
+        let Reloaded { generation, changed } = self.store(config, catalog, Trigger::Slice, layers);
         Ok(SliceChange { generation, changed, persisted })
     }
 }
 
 /// Writes the runtime slices as TOML, atomically: temporary file, fsync, rename.
 fn write_overlay(path: &Path, slices: &BTreeMap<String, RawSlice>) -> std::io::Result<()> {
-    let doc = RawConfig { server: Default::default(), slices: slices.clone() };
+    let doc = RawConfig { slices: slices.clone(), ..RawConfig::default() };
     let text = toml::to_string(&doc).map_err(std::io::Error::other)?;
     let header = "# Runtime slices set through the medley admin API; rewritten on every change.\n";
     let tmp = path.with_extension("tmp");
@@ -388,16 +484,19 @@ fn write_overlay(path: &Path, slices: &BTreeMap<String, RawSlice>) -> std::io::R
 /// How long file events must be quiet before a reload: editors write, rename and chmod in bursts.
 pub const DEBOUNCE: Duration = Duration::from_millis(200);
 
-/// Watches the config file and reloads when it changes, until `shutdown`.
+/// Watches the config file, and the item catalog's file when the config names one, and reloads
+/// when either changes, until `shutdown`.
 ///
-/// The watch is on the file's directory, not the file: editors that save by writing a new file
-/// and renaming it over the old one replace the inode a file watch would follow. Events for the
-/// file's own name count, and so do events for `..data`: a Kubernetes ConfigMap volume exposes
+/// The watch is on each file's directory, not the file: editors that save by writing a new file
+/// and renaming it over the old one replace the inode a file watch would follow (and so does the
+/// usual way to publish a catalog: write a temporary file, rename it into place). Events for the
+/// files' own names count, and so do events for `..data`: a Kubernetes ConfigMap volume exposes
 /// each key as a symlink through `..data`, and updates it by renaming a new `..data` symlink
 /// into place, so the file's own name never sees an event (config/k8s/ relies on this). Events
 /// for other names in the directory are ignored, and so are events that cannot change content
 /// ([`content_may_change`]): reading the file during a reload opens and closes it, and reacting
-/// to that would reload forever.
+/// to that would reload forever. After every reload the catalog's directory is watched too, when
+/// a new config moved the catalog.
 ///
 /// # Errors
 /// When the watch cannot be set up (the directory is gone, or inotify limits are reached).
@@ -407,24 +506,42 @@ pub fn watch(
 ) -> notify::Result<Option<tokio::task::JoinHandle<()>>> {
     use notify::Watcher as _;
     let Some(file) = reloader.source().file.clone() else { return Ok(None) };
-    let dir = file
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
-    let name = file.file_name().map(std::ffi::OsStr::to_os_string);
+    let names: Arc<Mutex<Vec<std::ffi::OsString>>> = Arc::default();
     let (tx, mut rx) = tokio::sync::mpsc::unbounded_channel();
+    let seen = names.clone();
     let mut watcher = notify::recommended_watcher(move |event: notify::Result<notify::Event>| {
         if let Ok(event) = event {
-            if content_may_change(&event.kind) && event.paths.iter().any(|p| watched_name(p, name.as_deref()))
+            let names = seen.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+            if content_may_change(&event.kind)
+                && event.paths.iter().any(|p| names.iter().any(|n| watched_name(p, Some(n.as_os_str()))))
             {
                 let _ = tx.send(());
             }
         }
     })?;
-    watcher.watch(&dir, notify::RecursiveMode::NonRecursive)?;
+    let mut dirs: Vec<PathBuf> = Vec::new();
+    let mut follow = move |path: &Path, watcher: &mut notify::RecommendedWatcher| -> notify::Result<()> {
+        let dir = path
+            .parent()
+            .filter(|p| !p.as_os_str().is_empty())
+            .map_or_else(|| PathBuf::from("."), Path::to_path_buf);
+        if let Some(name) = path.file_name() {
+            let mut names = names.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+            if !names.iter().any(|n| n == name) {
+                names.push(name.to_os_string());
+            }
+        }
+        if !dirs.contains(&dir) {
+            watcher.watch(&dir, notify::RecursiveMode::NonRecursive)?;
+            dirs.push(dir);
+        }
+        Ok(())
+    };
+    follow(&file, &mut watcher)?;
+    if let Some(catalog) = reloader.catalog_file() {
+        follow(&catalog, &mut watcher)?;
+    }
     Ok(Some(tokio::spawn(async move {
-        // The watcher lives as long as this task.
-        let _watcher = watcher;
         let stop = shutdown.started();
         tokio::pin!(stop);
         loop {
@@ -438,6 +555,11 @@ pub fn watch(
                     while let Ok(Some(())) = tokio::time::timeout(DEBOUNCE, rx.recv()).await {}
                     let r = reloader.clone();
                     let _ = tokio::task::spawn_blocking(move || r.reload(Trigger::File)).await;
+                    if let Some(catalog) = reloader.catalog_file() {
+                        if let Err(e) = follow(&catalog, &mut watcher) {
+                            tracing::warn!(error = %e, catalog = %catalog.display(), "cannot watch the catalog's directory; reload it with SIGHUP or the admin API");
+                        }
+                    }
                 }
             }
         }

@@ -16,6 +16,18 @@ pub struct RawConfig {
     /// Traffic slices by name.
     #[serde(default)]
     pub slices: BTreeMap<String, RawSlice>,
+    /// The item catalog, when requests may send ids without embeddings.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub catalog: Option<RawCatalog>,
+}
+
+/// The `[catalog]` table.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCatalog {
+    /// A Parquet file, or an Arrow IPC file (`.arrow`, `.feather`, `.ipc`); a relative path is
+    /// relative to the config file's directory.
+    pub path: String,
 }
 
 /// The `[server]` table.
@@ -79,6 +91,9 @@ pub struct RawSlice {
     pub locked: Option<bool>,
     /// Sliding window of `dpp` and `ssd` (2..=1000); absent compares with every pick.
     pub window: Option<u64>,
+    /// What a request's candidate that the catalog does not know becomes when the algorithm needs
+    /// its embedding: `refuse` (422 `unknown_item`, the default) or `drop`.
+    pub unknown_items: Option<String>,
     /// Default taste profile (category → weight) for requests that send none.
     pub profile: Option<BTreeMap<String, f64>>,
     /// Fairness floor for requests that send none.
@@ -109,6 +124,8 @@ pub struct RawArm {
     pub max_per_category: Option<u64>,
     /// Overrides the slice's window.
     pub window: Option<u64>,
+    /// Overrides the slice's unknown-item policy.
+    pub unknown_items: Option<String>,
 }
 
 /// The `[slices.NAME.shadow]` table.

@@ -64,6 +64,30 @@ pub struct Settings {
     pub max_per_category: Option<usize>,
     /// Sliding window of `dpp` and `ssd`.
     pub window: Option<u64>,
+    /// What a candidate unknown to the catalog becomes.
+    pub unknown_items: UnknownItems,
+}
+
+/// What a candidate without an embedding whose id the catalog does not hold becomes, when the
+/// algorithm needs embeddings (`unknown_items` of a slice or arm).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum UnknownItems {
+    /// The request is refused: 422 `unknown_item` naming the candidate.
+    #[default]
+    Refuse,
+    /// The candidate is left out; the response counts it in `dropped`.
+    Drop,
+}
+
+impl UnknownItems {
+    /// The config value.
+    #[must_use]
+    pub fn name(self) -> &'static str {
+        match self {
+            Self::Refuse => "refuse",
+            Self::Drop => "drop",
+        }
+    }
 }
 
 /// A validated arm.
@@ -140,6 +164,11 @@ pub struct Config {
     pub slices: BTreeMap<String, Slice>,
     /// The document it was validated from (runtime slices merged in), for the admin view.
     pub raw: RawConfig,
+    /// The item catalog's file, as written in `[catalog] path` ([`ConfigSource`] resolves a
+    /// relative path against the config file's directory).
+    ///
+    /// [`ConfigSource`]: crate::serve::reload::ConfigSource
+    pub catalog: Option<std::path::PathBuf>,
 }
 
 /// Defaults for keys a slice leaves out.
@@ -194,7 +223,17 @@ impl Config {
             let slice = validate_slice(name, raw_slice.clone(), &server.limits)?;
             slices.insert(name.clone(), slice);
         }
-        Ok(Self { server, slices, raw })
+        let catalog = match &raw.catalog {
+            None => None,
+            Some(c) if c.path.is_empty() => {
+                return Err(invalid(
+                    "catalog.path",
+                    "empty; name a Parquet or Arrow IPC file, or drop the [catalog] table",
+                ))
+            }
+            Some(c) => Some(std::path::PathBuf::from(&c.path)),
+        };
+        Ok(Self { server, slices, raw, catalog })
     }
 
     /// The slice called `name`.
@@ -325,6 +364,7 @@ fn settings(
     score_transform: Option<&str>,
     max_per_category: Option<u64>,
     window: Option<u64>,
+    unknown_items: Option<&str>,
     base: &RawSlice,
     limits: &Limits,
 ) -> Result<Settings, ConfigError> {
@@ -357,7 +397,17 @@ fn settings(
     if let Some(w) = window.filter(|w| !(2..=MAX_WINDOW as u64).contains(w)) {
         return Err(invalid(field("window"), format!("{w} is outside 2..={MAX_WINDOW}")));
     }
-    Ok(Settings { algorithm, lambda, k, score_transform, max_per_category, window })
+    let unknown_items = match unknown_items.or(base.unknown_items.as_deref()) {
+        None | Some("refuse") => UnknownItems::Refuse,
+        Some("drop") => UnknownItems::Drop,
+        Some(other) => {
+            return Err(invalid(
+                field("unknown_items"),
+                format!("unknown policy {other:?}; known: refuse, drop"),
+            ))
+        }
+    };
+    Ok(Settings { algorithm, lambda, k, score_transform, max_per_category, window, unknown_items })
 }
 
 /// Validates one slice table; `name` is its key under `[slices]`.
@@ -377,6 +427,7 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
         raw.score_transform.as_deref(),
         raw.max_per_category,
         raw.window,
+        raw.unknown_items.as_deref(),
         &RawSlice::default(),
         limits,
     )?;
@@ -418,6 +469,7 @@ pub fn validate_slice(name: &str, raw: RawSlice, limits: &Limits) -> Result<Slic
                     a.score_transform.as_deref(),
                     a.max_per_category,
                     a.window,
+                    a.unknown_items.as_deref(),
                     &raw,
                     limits,
                 )?;
