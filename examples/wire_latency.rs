@@ -8,6 +8,10 @@
 //! cargo run --release --example wire_latency -- --http 127.0.0.1:8080 --grpc 127.0.0.1:8082 --requests 2000
 //! ```
 //! `--grpc` may be left out (an older server without gRPC); `--wires json` measures one wire.
+//!
+//! The `ids` wire sends ids and scores only, for a server whose item catalog holds the slate's
+//! items: `--write-catalog FILE` writes them as Parquet and exits; serve with `[catalog] path =
+//! "FILE"` in the config and measure `--wires json,b64,ids,grpc` against that one server.
 
 use std::time::{Duration, Instant};
 
@@ -37,12 +41,36 @@ fn slate() -> (Vec<Row>, serde_json::Value) {
     (rows, head)
 }
 
-fn json_body(rows: &[Row], head: &serde_json::Value, b64: bool) -> Vec<u8> {
+/// The slate's items as an item catalog.
+fn write_catalog(rows: &[Row], path: &str) {
+    use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
+    use std::sync::Arc;
+    let values: Float32Array = rows.iter().flat_map(|r| r.3.iter().copied()).collect();
+    let item = Arc::new(arrow_schema::Field::new("item", arrow_schema::DataType::Float32, false));
+    let embedding = FixedSizeListArray::try_new(item, 64, Arc::new(values), None).unwrap();
+    let columns: Vec<(&str, ArrayRef)> = vec![
+        ("id", Arc::new(StringArray::from_iter_values(rows.iter().map(|r| &r.0)))),
+        ("embedding", Arc::new(embedding)),
+        ("category", Arc::new(StringArray::from_iter_values(rows.iter().map(|r| &r.2)))),
+    ];
+    let batch = RecordBatch::try_from_iter(columns).unwrap();
+    let mut w =
+        parquet::arrow::ArrowWriter::try_new(std::fs::File::create(path).unwrap(), batch.schema(), None)
+            .unwrap();
+    w.write(&batch).unwrap();
+    w.close().unwrap();
+}
+
+/// `wire`: `json` (arrays), `b64` or `ids` (ids and scores only).
+fn json_body(rows: &[Row], head: &serde_json::Value, wire: &str) -> Vec<u8> {
     let candidates: Vec<serde_json::Value> = rows
         .iter()
         .map(|(id, score, cat, e)| {
+            if wire == "ids" {
+                return json!({"id": id, "score": score});
+            }
             let mut c = json!({"id": id, "score": score, "category": cat});
-            if b64 {
+            if wire == "b64" {
                 c["embedding_b64"] = json!(encode_b64_embedding(e));
             } else {
                 c["embedding"] = json!(e);
@@ -132,14 +160,19 @@ async fn main() {
     let n: usize = arg("--requests").and_then(|r| r.parse().ok()).unwrap_or(2000);
     let wires = arg("--wires").unwrap_or_else(|| "json,b64,grpc".into());
     let (rows, head) = slate();
+    if let Some(path) = arg("--write-catalog") {
+        write_catalog(&rows, &path);
+        println!("wrote the slate's 500 items to {path}");
+        return;
+    }
     let client = reqwest::Client::new();
     println!("(500, 64, 50) DPP, {n} sequential requests per wire, after 50 to warm up");
     println!("{:<10} {:>10} {:>10} {:>10}", "wire", "bytes", "p50 ms", "p99 ms");
     for wire in wires.split(',') {
         let mut times = Vec::with_capacity(n);
         let bytes = match wire {
-            "json" | "b64" => {
-                let body = bytes::Bytes::from(json_body(&rows, &head, wire == "b64"));
+            "json" | "b64" | "ids" => {
+                let body = bytes::Bytes::from(json_body(&rows, &head, wire));
                 let url = format!("http://{http}/v1/rerank");
                 for i in 0..n + 50 {
                     let started = Instant::now();
@@ -150,7 +183,7 @@ async fn main() {
                         .send()
                         .await
                         .unwrap();
-                    assert_eq!(r.status(), 200);
+                    assert_eq!(r.status(), 200, "{wire}: {}", r.text().await.unwrap_or_default());
                     r.bytes().await.unwrap();
                     if i >= 50 {
                         times.push(started.elapsed());
@@ -179,7 +212,7 @@ async fn main() {
                 }
                 body.len()
             }
-            other => panic!("unknown wire {other}: json, b64 or grpc"),
+            other => panic!("unknown wire {other}: json, b64, ids or grpc"),
         };
         let (p50, p99) = percentiles(times);
         println!("{wire:<10} {bytes:>10} {p50:>10.3} {p99:>10.3}");

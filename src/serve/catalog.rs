@@ -39,7 +39,7 @@ use arrow_schema::{DataType, SchemaRef};
 use medley_core::model::{push_unit, RowFault};
 
 /// Rows decoded per Arrow batch while loading.
-const BATCH_ROWS: usize = 64 * 1024;
+const BATCH_ROWS: usize = 8 * 1024;
 
 /// Code of a row without a category.
 const NO_CATEGORY: u32 = u32::MAX;
@@ -171,17 +171,24 @@ impl Catalog {
         let io = |error| CatalogError::Io { path: shown.clone(), error };
         let stamp = Stamp::of(path).map_err(io)?;
         let bytes = bytes::Bytes::from(std::fs::read(path).map_err(io)?);
-        let digest = crate::serve::config::fnv1a64(bytes.iter());
         let mut builder = Builder::new(shown.clone(), max_dim);
         let ipc = path
             .extension()
             .and_then(std::ffi::OsStr::to_str)
             .is_some_and(|e| ["arrow", "feather", "ipc"].contains(&e.to_ascii_lowercase().as_str()));
-        if ipc {
-            read_ipc(bytes, &mut builder)?;
-        } else {
-            read_parquet(bytes, &mut builder)?;
-        }
+        // The digest (a serial FNV pass over every byte) runs beside the decode.
+        let (digest, read) = rayon::join(
+            || crate::serve::config::fnv1a64(bytes.iter()),
+            || {
+                if ipc {
+                    read_ipc(bytes.clone(), &mut builder)
+                } else {
+                    read_parquet(bytes.clone(), &mut builder)
+                }
+            },
+        );
+        read?;
+        drop(bytes);
         let mut catalog = builder.finish()?;
         catalog.version = format!("{}-{digest:016x}", catalog.len());
         catalog.path = path.to_path_buf();
@@ -307,7 +314,27 @@ impl<'a> Strings<'a> {
     }
 }
 
-/// One row's embedding values, in the file's float type.
+/// One batch's embedding column: the lists, their offsets and their values.
+struct Lists<'a> {
+    column: &'a ArrayRef,
+    values: &'a ArrayRef,
+    offsets: Offsets<'a>,
+    floats: Floats<'a>,
+}
+
+/// Where row `i`'s values start and end in a list column's values.
+enum Offsets<'a> {
+    I32(&'a [i32]),
+    I64(&'a [i64]),
+    /// A fixed-size list: row `i` starts at `first + i·len`.
+    Fixed {
+        first: usize,
+        len: usize,
+    },
+}
+
+/// One row's (or one batch's) embedding values, in the file's float type.
+#[derive(Clone, Copy)]
 enum Floats<'a> {
     F32(&'a [f32]),
     F64(&'a [f64]),
@@ -387,6 +414,7 @@ impl Builder {
             Some(c) => Some(Strings::of(c).ok_or_else(|| self.column_error("category", "unreadable"))?),
         };
         let embeddings = column("embedding").ok_or_else(|| self.column_error("embedding", "unreadable"))?;
+        let embeddings = self.lists(embeddings)?;
         self.reserve(batch.num_rows());
         for i in 0..batch.num_rows() {
             let row = first + i;
@@ -398,7 +426,7 @@ impl Builder {
                     format!("is {} bytes; the limit is {}", id.len(), medley_core::model::MAX_LABEL_BYTES),
                 ));
             }
-            let values = self.row_values(embeddings, i, row)?;
+            let values = self.row_values(&embeddings, i, row)?;
             self.push_embedding(values, row)?;
             let category = categories.as_ref().and_then(|c| c.get(i));
             if let Some(c) = category.filter(|c| c.len() > medley_core::model::MAX_LABEL_BYTES) {
@@ -426,38 +454,47 @@ impl Builder {
         Ok(())
     }
 
-    fn row_values<'a>(&self, column: &'a ArrayRef, i: usize, row: usize) -> Result<Floats<'a>, CatalogError> {
-        if column.is_null(i) {
-            return Err(self.row_error(row, "embedding", "is null"));
-        }
-        let (values, start, len) = match column.data_type() {
+    /// The embedding column of one batch, its type resolved once.
+    fn lists<'a>(&self, column: &'a ArrayRef) -> Result<Lists<'a>, CatalogError> {
+        let (values, offsets) = match column.data_type() {
             DataType::List(_) => {
                 let list = column.as_list::<i32>();
-                let o = list.value_offsets();
-                (list.values(), o[i] as usize, (o[i + 1] - o[i]) as usize)
+                (list.values(), Offsets::I32(list.value_offsets()))
             }
             DataType::LargeList(_) => {
                 let list = column.as_list::<i64>();
-                let o = list.value_offsets();
-                (list.values(), o[i] as usize, (o[i + 1] - o[i]) as usize)
+                (list.values(), Offsets::I64(list.value_offsets()))
             }
             DataType::FixedSizeList(_, _) => {
                 let list = column.as_fixed_size_list();
-                (list.values(), list.value_offset_at(i), list.value_length() as usize)
+                let first = if list.is_empty() { 0 } else { list.value_offset_at(0) };
+                (list.values(), Offsets::Fixed { first, len: list.value_length() as usize })
             }
             other => return Err(self.column_error("embedding", format!("has type {other}"))),
         };
-        if values.null_count() > 0 && (start..start + len).any(|j| values.is_null(j)) {
+        let floats = match values.data_type() {
+            DataType::Float32 => Floats::F32(values.as_primitive::<Float32Type>().values()),
+            DataType::Float64 => Floats::F64(values.as_primitive::<Float64Type>().values()),
+            other => return Err(self.column_error("embedding", format!("holds {other} values"))),
+        };
+        Ok(Lists { column, values, offsets, floats })
+    }
+
+    fn row_values<'a>(&self, lists: &Lists<'a>, i: usize, row: usize) -> Result<Floats<'a>, CatalogError> {
+        if lists.column.is_null(i) {
+            return Err(self.row_error(row, "embedding", "is null"));
+        }
+        let (start, len) = match lists.offsets {
+            Offsets::I32(o) => (o[i] as usize, (o[i + 1] - o[i]) as usize),
+            Offsets::I64(o) => (o[i] as usize, (o[i + 1] - o[i]) as usize),
+            Offsets::Fixed { first, len } => (first + i * len, len),
+        };
+        if lists.values.null_count() > 0 && (start..start + len).any(|j| lists.values.is_null(j)) {
             return Err(self.row_error(row, "embedding", "holds a null value"));
         }
-        Ok(match values.data_type() {
-            DataType::Float32 => {
-                Floats::F32(&values.as_primitive::<Float32Type>().values()[start..start + len])
-            }
-            DataType::Float64 => {
-                Floats::F64(&values.as_primitive::<Float64Type>().values()[start..start + len])
-            }
-            other => return Err(self.column_error("embedding", format!("holds {other} values"))),
+        Ok(match lists.floats {
+            Floats::F32(v) => Floats::F32(&v[start..start + len]),
+            Floats::F64(v) => Floats::F64(&v[start..start + len]),
         })
     }
 
