@@ -250,6 +250,38 @@ async fn unknown_ids_are_refused_or_dropped_and_sent_values_win() {
     let (_, r) = post_json(&client, &url, &sent).await;
     assert!(r["items"].as_array().unwrap().iter().all(|i| i["category"] == "sent-category"), "{r}");
     assert_eq!(r["diversity"]["distinct_categories"], 1);
+
+    // gRPC: ids and scores only (no embedding values), the same slate and catalog version as the
+    // JSON answer, and unknown_item as INVALID_ARGUMENT with its medley code (a tonic client).
+    use medley::grpc::proto;
+    let mut grpc = proto::reranker_client::RerankerClient::connect(server.grpc.clone()).await.unwrap();
+    let candidates = |b: &Value| -> Vec<proto::Candidate> {
+        b["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| proto::Candidate {
+                id: c["id"].as_str().unwrap().into(),
+                score: c["score"].as_f64().unwrap(),
+                ..Default::default()
+            })
+            .collect()
+    };
+    let call = proto::RerankRequest { candidates: candidates(&body), ..Default::default() };
+    let answer = grpc.rerank(call).await.unwrap().into_inner();
+    let (_, json_answer) = post_json(&client, &url, &body).await;
+    let ids: Vec<&str> = answer.items.iter().map(|i| i.id.as_str()).collect();
+    let json_ids: Vec<&str> =
+        json_answer["items"].as_array().unwrap().iter().map(|i| i["id"].as_str().unwrap()).collect();
+    assert_eq!(ids, json_ids);
+    assert_eq!(answer.catalog_version.as_deref(), json_answer["catalog_version"].as_str());
+    let call = proto::RerankRequest { candidates: candidates(&unknown), ..Default::default() };
+    let status = grpc.rerank(call).await.unwrap_err();
+    assert_eq!(status.code(), tonic::Code::InvalidArgument);
+    assert!(
+        status.message().contains("unknown_item") || status.message().contains("not in the item catalog"),
+        "{status:?}"
+    );
     server.stop().await;
 }
 

@@ -616,3 +616,23 @@ pub async fn on_sighup(reloader: Arc<Reloader>, shutdown: Shutdown) {
     #[cfg(not(unix))]
     let _ = (reloader, shutdown);
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A relative `[catalog] path` is relative to the config file's directory, not the working
+    /// directory (so a ConfigMap can name a file beside it); an absolute one stays.
+    #[test]
+    fn a_relative_catalog_path_is_resolved_against_the_config_directory() {
+        let source =
+            ConfigSource { file: Some(PathBuf::from("/etc/medley/medley.toml")), ..Default::default() };
+        let raw = |path: &str| {
+            toml::from_str::<RawConfig>(&format!("[catalog]\npath = {path:?}\n[slices.default]\n")).unwrap()
+        };
+        let built = source.build(raw("items.parquet"), &BTreeMap::new()).unwrap();
+        assert_eq!(built.catalog.as_deref(), Some(Path::new("/etc/medley/items.parquet")));
+        let built = source.build(raw("/data/items.parquet"), &BTreeMap::new()).unwrap();
+        assert_eq!(built.catalog.as_deref(), Some(Path::new("/data/items.parquet")));
+    }
+}

@@ -35,7 +35,7 @@ pub fn describe(config: &Config) -> String {
             let share = 100.0 * arm.weight as f64 / slice.total_weight as f64;
             let _ = writeln!(
                 out,
-                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}{}",
+                "  arm {} ({share:.1} %): algorithm={} lambda={} k={} score_transform={} max_per_category={}{}{}",
                 arm.name,
                 st.algorithm.name(),
                 st.lambda,
@@ -43,6 +43,10 @@ pub fn describe(config: &Config) -> String {
                 st.score_transform.name(),
                 cap,
                 st.window.map_or_else(String::new, |w| format!(" window={w}")),
+                match st.unknown_items {
+                    super::UnknownItems::Refuse => String::new(),
+                    other => format!(" unknown_items={}", other.name()),
+                },
             );
         }
         if let Some(profile) = &slice.profile {

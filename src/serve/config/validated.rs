@@ -603,6 +603,26 @@ mod tests {
         assert!(err("[slices.default]\nlambda = \"x\"\n").contains("invalid type"));
     }
 
+    /// Issue 16: the catalog table and the unknown-item policy, slice and arm.
+    #[test]
+    fn catalog_and_unknown_items_validate_and_refuse_naming_the_key() {
+        let ok = Config::from_toml(
+            "[catalog]\npath = \"items.parquet\"\n[slices.default]\nunknown_items = \"drop\"\n[[slices.default.arms]]\nname = \"a\"\nweight = 1\nunknown_items = \"refuse\"\n",
+        )
+        .unwrap();
+        assert_eq!(ok.catalog.as_deref(), Some(std::path::Path::new("items.parquet")));
+        let d = ok.slice("default").unwrap();
+        assert_eq!(d.arms[0].settings.unknown_items, UnknownItems::Refuse);
+        let no_arms = Config::from_toml("[slices.default]\nunknown_items = \"drop\"\n").unwrap();
+        assert_eq!(no_arms.slice("default").unwrap().arms[0].settings.unknown_items, UnknownItems::Drop);
+        assert!(no_arms.catalog.is_none());
+        assert!(
+            err("[slices.default]\nunknown_items = \"skip\"\n").starts_with("slices.default.unknown_items:")
+        );
+        assert!(err("[catalog]\npath = \"\"\n[slices.default]\n").starts_with("catalog.path:"));
+        assert!(err("[catalog]\nfile = \"x\"\n[slices.default]\n").contains("unknown field `file`"));
+    }
+
     #[test]
     fn slice_defaults_are_documented_values() {
         let c = Config::from_toml("[slices.default]\n").unwrap();
