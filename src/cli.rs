@@ -60,7 +60,7 @@ pub enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
         /// Item catalog (Parquet or Arrow IPC) for candidates sent without embeddings; replaces
-        /// the config's [catalog] path.
+        /// the path in the config's catalog table.
         #[arg(long)]
         catalog: Option<PathBuf>,
     },
