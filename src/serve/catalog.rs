@@ -132,7 +132,7 @@ pub struct CatalogItem<'a> {
 /// # Invariants
 /// `ids` holds every id back to back, id `r` being `ids[end(r-1)..end(r)]`; ids are unique and
 /// `index` maps each id's hash to its row; `rows.len() = len·dim` and every row has unit norm up
-/// to f32 rounding; `category[r]` is [`NO_CATEGORY`] or an index into `category_names`.
+/// to f32 rounding; `category[r]` is `NO_CATEGORY` (`u32::MAX`) or an index into `category_names`.
 pub struct Catalog {
     path: PathBuf,
     stamp: Option<Stamp>,
