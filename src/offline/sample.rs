@@ -120,7 +120,7 @@ pub fn write(spec: &SampleSpec, out: &mut dyn Write) -> std::io::Result<()> {
 /// Writes the shop's items to `catalog` as an item catalog (Parquet: `id` utf8, `embedding`
 /// fixed-size list of float32, `category` utf8), then `spec.requests` requests to `out` that
 /// carry ids and scores only (no embeddings, no categories), for a server or `medley rerank` that
-/// serves with that catalog. The requests are otherwise those [`write`] writes for the same spec.
+/// serves with that catalog. The requests are otherwise those [`write()`] writes for the same spec.
 ///
 /// # Errors
 /// I/O errors on `out` or the catalog file.
