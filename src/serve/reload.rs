@@ -358,7 +358,11 @@ impl Reloader {
             layers.retired = old.catalog().map(Arc::downgrade);
             self.metrics.set_catalog(engine.catalog().map(|c| &**c));
             self.metrics.catalog_reloads.with_label_values(&[trigger.label()]).inc();
-            tracing::info!(version = ?version(engine.catalog()), trigger = trigger.label(), "catalog swapped");
+            tracing::info!(
+                version = engine.catalog().map_or("none", |c| c.version()),
+                trigger = trigger.label(),
+                "catalog swapped"
+            );
         }
         self.metrics.set_config(generation, engine.digest());
         self.engine.store(engine);
