@@ -80,6 +80,19 @@ fn kernels(c: &mut Criterion) {
                 b.iter(|| black_box(algo.select(black_box(slate), p, &mut ws).unwrap()))
             });
         }
+        // A fairness floor (Zehlike et al., CIKM 2017) over one provider group in six, at a 30 %
+        // target share and alpha 0.1: `dpp` and `mmr` run their eager loops under it, and
+        // `relevance` under a floor is FA*IR's algorithm.
+        let fair = input.clone().with_fairness((0..n).map(|i| i % 6 == 0).collect(), 0.3, 0.1).unwrap();
+        for (label, algo) in
+            [("dpp_fair", &Dpp as &dyn Diversifier), ("mmr_fair", &Mmr), ("relevance_fair", &Relevance)]
+        {
+            let mut ws = Workspace::new();
+            group.throughput(Throughput::Elements(if label == "relevance_fair" { 0 } else { macs(0) }));
+            group.bench_function(BenchmarkId::from_parameter(label), |b| {
+                b.iter(|| black_box(algo.select(black_box(&fair), &params, &mut ws).unwrap()))
+            });
+        }
         // The lazy strategy, which `dpp` (screened on these slates) replaced as the default.
         group.throughput(Throughput::Elements(macs(2 * k * k * d)));
         let mut ws = Workspace::new();
