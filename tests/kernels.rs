@@ -189,9 +189,26 @@ proptest! {
         prop_assert_eq!(run(&Ssd, &input, &p), reference::ssd(&input, &p));
         let w = p.with_window(Some(window as u64)).unwrap();
         prop_assert_eq!(run(&Dpp, &input, &w), reference::dpp_window(&input, &w, window));
-        if lambda > 0.0 {
-            // MMR's brute force takes the same f64 cosines as its fair (eager) loop.
-            prop_assert_eq!(run(&Mmr, &input, &p), reference::mmr(&input, &p));
+        // MMR sums in f32 and its brute force in f64: each fast pick must be the brute force's
+        // argmax over the step's choosable set (the protected ones where the floor needs one
+        // and one remains), given the fast prefix, up to 1e-5 (as in the unrestricted check).
+        let fast_mmr = run(&Mmr, &input, &p);
+        if lambda == 0.0 {
+            prop_assert_eq!(&fast_mmr, &reference::mmr(&input, &p));
+        }
+        let e = input.embeddings().unwrap();
+        for (step, &pick) in fast_mmr.iter().enumerate() {
+            let prefix = &fast_mmr[..step];
+            let obj = |i: usize| {
+                let pen = prefix.iter().map(|&j| e.cosine(i, j)).fold(f64::NEG_INFINITY, f64::max);
+                (1.0 - lambda) * input.normalized()[i] - lambda * if prefix.is_empty() { 0.0 } else { pen }
+            };
+            let held = prefix.iter().filter(|&&i| protected[i]).count();
+            let rest: Vec<usize> = (0..n).filter(|i| !prefix.contains(i)).collect();
+            let restrict = held < minimums[step] && rest.iter().any(|&i| protected[i]);
+            prop_assert!(!restrict || protected[pick], "step {step}: the floor needs a protected pick");
+            let best = rest.iter().filter(|&&i| !restrict || protected[i]).map(|&i| obj(i)).fold(f64::NEG_INFINITY, f64::max);
+            prop_assert!(obj(pick) >= best - 1e-5, "step {step}: pick {pick} at {} vs best {best}", obj(pick));
         }
     }
 
@@ -578,4 +595,31 @@ fn a_window_of_two_only_avoids_the_previous_pick() {
         assert!((obj(picks[t]) - best).abs() < 1e-12, "step {t}");
     }
     assert_ne!(picks, run(&Dpp, &input, &params(12, 0.9)), "the window changes the slate");
+}
+
+/// The lazy DPP under a fairness floor when every protected candidate adds no direction: the
+/// restricted steps fall back to the best protected one by score (and record where), the others
+/// keep the log-det objective; the picks equal the eager brute force's (`reference::dpp_eager`).
+#[test]
+fn edge_a_floor_of_exhausted_protected_candidates_falls_back_by_score_in_dpp() {
+    let mut rng = Rng(33);
+    let mut cands = candidates(&mut rng, 30, 5, 3);
+    // Candidates 0, 10, 20 are protected; 10 and 20 duplicate 0, which has the top score.
+    cands[0].score = 100.0;
+    for i in [10, 20] {
+        cands[i].embedding = cands[0].embedding.clone();
+    }
+    let protected: Vec<bool> = (0..30).map(|i| i % 10 == 0).collect();
+    let input = slate(cands).with_fairness(protected.clone(), 0.5, 0.1).unwrap();
+    for lambda in [0.3, 0.7, 1.0] {
+        let p = params(12, lambda);
+        let want = reference::dpp_eager(&input, &p);
+        for strategy in STRATEGIES {
+            let sel = dpp(strategy, &input, &p);
+            assert_eq!(sel.indices, want, "{strategy:?} at lambda {lambda}");
+            assert!(sel.exhausted_at.is_some(), "{strategy:?}: a protected twin was a fallback pick");
+            let held = sel.indices.iter().filter(|&&i| protected[i]).count();
+            assert_eq!(held, 3, "all three protected are in a slate of 12 at share 0.5");
+        }
+    }
 }

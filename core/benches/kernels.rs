@@ -81,7 +81,7 @@ fn kernels(c: &mut Criterion) {
             });
         }
         // A fairness floor (Zehlike et al., CIKM 2017) over one provider group in six, at a 30 %
-        // target share and alpha 0.1: `dpp` and `mmr` run their eager loops under it, and
+        // target share and alpha 0.1: `dpp` and `mmr` run their lazy loops with a heap per side, and
         // `relevance` under a floor is FA*IR's algorithm.
         let fair = input.clone().with_fairness((0..n).map(|i| i % 6 == 0).collect(), 0.3, 0.1).unwrap();
         for (label, algo) in

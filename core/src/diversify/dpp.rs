@@ -62,7 +62,8 @@ pub const EPSILON: f64 = 1e-9;
 ///   SIMD panels and updated lazily per panel; f64 only for the candidates that could win a step.
 ///   Module `screened` has the method and its error bound.
 /// - **lazy**: a max-heap of stale f64 values; only the candidate on top is brought up to date.
-///   It handles every slate, including those whose score range is too wide for f32 weights.
+///   It handles every slate, including those whose score range is too wide for f32 weights and
+///   those under a fairness floor (a heap for the protected candidates beside the other).
 ///
 /// # Complexity
 /// Worst case O(N·k·d + k²·d) time: every candidate updated at every step, plus building each
@@ -123,14 +124,6 @@ impl Dpp {
         }
         // A window that slides before the last pick is its own kernel; one that never does
         // changes nothing, so the unbounded kernels keep their exact picks.
-        // A fairness floor restricts some steps to protected candidates, which the lazy and
-        // screened strategies (whose bounds assume a fixed candidate set) cannot follow: the
-        // eager loop of the windowed kernel, with no window, computes the same objective.
-        if input.fairness().is_some() {
-            let sel = window::select(input, params, ws, params.window(), window::Gain::LogDet);
-            ws.check_cancelled()?;
-            return Ok(sel);
-        }
         if let Some(w) = params.window() {
             if w.saturating_sub(1) < params.k().min(input.len()).saturating_sub(1) {
                 let sel = window::select(input, params, ws, Some(w), window::Gain::LogDet);
@@ -138,7 +131,9 @@ impl Dpp {
                 return Ok(sel);
             }
         }
-        let screen = strategy != DppStrategy::Lazy && screened::screenable(input, lambda);
+        // A fairness floor restricts some steps to protected candidates: the lazy strategy
+        // follows it with a heap per side; the screened one (panels of the whole slate) does not.
+        let screen = strategy != DppStrategy::Lazy && input.fairness().is_none() && screened::screenable(input, lambda);
         let sel = Arch::new().dispatch(Run { input, params, ws, screen });
         ws.check_cancelled()?;
         Ok(sel)

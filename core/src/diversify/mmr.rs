@@ -20,6 +20,10 @@ use crate::model::{Params, RerankInput, Selection};
 /// only falls (its running max-similarity only rises), so a max-heap of stale values serves as
 /// upper bounds and only the candidate on top is brought up to date. The first pick's similarity
 /// row is computed for everyone, which seeds exact values. Picks equal the eager algorithm's.
+/// Under a fairness floor ([`crate::fairness`]) the protected candidates keep a heap of their
+/// own: a step the floor restricts searches that heap only, any other step both tops. Bounds stay
+/// valid whichever steps were restricted (a value depends only on the slate so far), so the picks
+/// are still the eager algorithm's with the same restriction.
 ///
 /// # Complexity
 /// Worst case O(N·k·d) time, as the eager form with a running maximum (one similarity row per
@@ -58,23 +62,23 @@ impl Diversifier for Mmr {
             return Ok(relevance_selection(input, params, ws));
         }
         let emb = input.embeddings().ok_or(KernelError::EmbeddingsRequired { algorithm: self.name() })?;
-        if input.fairness().is_some() {
-            let sel = eager(input, params, ws);
-            ws.check_cancelled()?;
-            return Ok(sel);
-        }
         let n = input.len();
         let m = params.k().min(n);
         let s = input.normalized();
-        ws.reset(n, input.group_count());
+        ws.reset_for(input, m);
         let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
 
         // First pick: the max over an empty slate is 0, so the objective is the score term.
         let mut first: Option<(usize, f64)> = None;
-        for i in 0..n {
-            let obj = (1.0 - lambda) * s[i];
-            if allowed(input, params, &ws.group_taken, i) && first.is_none_or(|(_, b)| obj > b) {
-                first = Some((i, obj));
+        for r in passes(ws.must_protect(0)) {
+            for i in 0..n {
+                let obj = (1.0 - lambda) * s[i];
+                if eligible(input, params, ws, i, r) && first.is_none_or(|(_, b)| obj > b) {
+                    first = Some((i, obj));
+                }
+            }
+            if first.is_some() {
+                break;
             }
         }
         let Some((j, obj)) = first else { return Ok(sel) };
@@ -89,45 +93,93 @@ impl Diversifier for Mmr {
         row_dots_f32(emb.as_slice(), emb.row(j), emb.inv_norms(), emb.inv_norms()[j], &mut ws.running);
         ws.filled.clear();
         ws.filled.resize(n, 1);
-        ws.heap.clear();
-        let running = &ws.running;
-        let taken = &ws.taken;
-        ws.heap.extend(
-            (0..n).filter(|&i| !taken[i]).map(|i| Bound { value: (1.0 - lambda) * s[i] - lambda * running[i], index: i }),
-        );
+        // Protected candidates get a heap of their own when a fairness floor applies, so a step
+        // restricted to them looks at theirs only and a step that is not looks at both tops.
+        let protected = input.fairness().map(|f| f.protected());
+        let Workspace { heap, heap_protected, running, taken, .. } = &mut *ws;
+        heap.clear();
+        heap_protected.clear();
+        for i in (0..n).filter(|&i| !taken[i]) {
+            let bound = Bound { value: (1.0 - lambda) * s[i] - lambda * running[i], index: i };
+            if protected.is_some_and(|p| p[i]) {
+                heap_protected.push(bound);
+            } else {
+                heap.push(bound);
+            }
+        }
 
         while sel.indices.len() < m {
             if ws.cancelled() {
                 break;
             }
             let step = sel.indices.len();
-            let Some(top) = ws.heap.pop() else { break };
-            let i = top.index;
-            // Caps only tighten, so a candidate dropped here is out for good.
-            if !allowed(input, params, &ws.group_taken, i) {
-                continue;
+            let restrict = ws.must_protect(step);
+            let mut pick = None;
+            for r in passes(restrict) {
+                pick = best(emb, input, params, ws, &sel.indices, r);
+                if pick.is_some() {
+                    break;
+                }
             }
-            if ws.filled[i] < step {
-                let refresh = Refresh {
-                    rows: emb.as_slice(),
-                    inv_norm: emb.inv_norms(),
-                    i,
-                    picks: &sel.indices[ws.filled[i]..step],
-                    max_sim: &mut ws.running[i],
-                };
-                Arch::new().dispatch(refresh);
-                ws.filled[i] = step;
-            }
-            let fresh = Bound { value: (1.0 - lambda) * s[i] - lambda * ws.running[i], index: i };
-            debug_assert!(fresh.value <= top.value + 1e-9, "lazy bound grew: max-similarity must not fall");
-            if ws.heap.peek().is_some_and(|next| *next > fresh) {
-                ws.heap.push(fresh);
-                continue;
-            }
-            take(input, ws, &mut sel, i, fresh.value);
+            let Some(fresh) = pick else { break };
+            take(input, ws, &mut sel, fresh.index, fresh.value);
         }
         ws.check_cancelled()?;
         Ok(sel)
+    }
+}
+
+/// The lazy search of one step: the best candidate among the protected heap's (`restrict`) or
+/// both heaps', brought up to date, or `None` when the searched heaps hold no allowed candidate.
+///
+/// Pops the larger top; a candidate over its cap is dropped for good (caps only tighten); a stale
+/// one is refreshed with the picks it has not seen; a fresh value that no searched top beats is
+/// the step's greedy choice (ties to the lower index, by [`Bound`]'s order), else it goes back.
+fn best(
+    emb: &crate::model::Embeddings,
+    input: &RerankInput,
+    params: &Params,
+    ws: &mut Workspace,
+    picks: &[usize],
+    restrict: bool,
+) -> Option<Bound> {
+    let lambda = params.lambda();
+    let s = input.normalized();
+    let step = picks.len();
+    loop {
+        let from_protected = match (ws.heap_protected.peek(), ws.heap.peek().filter(|_| !restrict)) {
+            (None, None) => return None,
+            (Some(_), None) => true,
+            (None, Some(_)) => false,
+            (Some(a), Some(b)) => a > b,
+        };
+        let heap = if from_protected { &mut ws.heap_protected } else { &mut ws.heap };
+        let top = heap.pop().expect("peeked");
+        let i = top.index;
+        if !allowed(input, params, &ws.group_taken, i) {
+            continue;
+        }
+        if ws.filled[i] < step {
+            let refresh = Refresh {
+                rows: emb.as_slice(),
+                inv_norm: emb.inv_norms(),
+                i,
+                picks: &picks[ws.filled[i]..step],
+                max_sim: &mut ws.running[i],
+            };
+            Arch::new().dispatch(refresh);
+            ws.filled[i] = step;
+        }
+        let fresh = Bound { value: (1.0 - lambda) * s[i] - lambda * ws.running[i], index: i };
+        debug_assert!(fresh.value <= top.value + 1e-9, "lazy bound grew: max-similarity must not fall");
+        let beaten = ws.heap_protected.peek().is_some_and(|next| *next > fresh)
+            || (!restrict && ws.heap.peek().is_some_and(|next| *next > fresh));
+        if beaten {
+            let heap = if from_protected { &mut ws.heap_protected } else { &mut ws.heap };
+            heap.push(fresh);
+            continue;
+        }
+        return Some(fresh);
     }
 }
 
@@ -160,49 +212,4 @@ impl WithSimd for Refresh<'_> {
             *max_sim = max_sim.max(cos);
         }
     }
-}
-
-/// MMR without lazy bounds, for slates with a fairness floor: a step the floor restricts may
-/// pass over a candidate the lazy heap would have dropped for good. Every candidate's running
-/// max-similarity is brought up to date at every step (f64 cosines, O(N·d) per pick) and the
-/// objective taken over the eligible ones, ties to the lower index.
-fn eager(input: &RerankInput, params: &Params, ws: &mut Workspace) -> Selection {
-    let emb = input.embeddings().expect("select checked for embeddings");
-    let (n, lambda) = (input.len(), params.lambda());
-    let m = params.k().min(n);
-    let s = input.normalized();
-    ws.reset_for(input, m);
-    ws.running.clear();
-    ws.running.resize(n, 0.0);
-    let mut sel = Selection { indices: Vec::with_capacity(m), gains: Vec::with_capacity(m), exhausted_at: None };
-    while sel.indices.len() < m {
-        if ws.cancelled() {
-            break;
-        }
-        let restrict = ws.must_protect(sel.indices.len());
-        let mut best: Option<(f64, usize)> = None;
-        for r in passes(restrict) {
-            for i in 0..n {
-                if !eligible(input, params, ws, i, r) {
-                    continue;
-                }
-                let obj = (1.0 - lambda) * s[i] - lambda * ws.running[i];
-                if best.is_none_or(|(b, _)| obj > b) {
-                    best = Some((obj, i));
-                }
-            }
-            if best.is_some() {
-                break;
-            }
-        }
-        let Some((obj, j)) = best else { break };
-        take(input, ws, &mut sel, j, obj);
-        // The max over an empty slate is 0; from the first pick on it is the true maximum.
-        let first = sel.indices.len() == 1;
-        for i in 0..n {
-            let c = emb.cosine(i, j);
-            ws.running[i] = if first { c } else { ws.running[i].max(c) };
-        }
-    }
-    sel
 }

@@ -132,8 +132,11 @@ pub struct Workspace {
     /// Windowed DPP and SSD (lazy): one more than the step at which each candidate's residual
     /// was last computed in full (0: never).
     evaluated: Vec<usize>,
-    /// MMR and DPP (lazy): stale upper bounds.
+    /// MMR and DPP (lazy): stale upper bounds (of the unprotected candidates, under a fairness
+    /// floor).
     heap: std::collections::BinaryHeap<Bound>,
+    /// MMR and DPP (lazy) under a fairness floor: stale upper bounds of the protected candidates.
+    heap_protected: std::collections::BinaryHeap<Bound>,
     /// Windowed DPP and SSD (lazy): the rows by score rank, transposed into f32 panels.
     narrow: Vec<f32>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
@@ -206,7 +209,7 @@ impl Workspace {
                 + self.proj.capacity())
                 * size_of::<f64>()
             + self.narrow.capacity() * size_of::<f32>()
-            + self.heap.capacity() * size_of::<Bound>()
+            + (self.heap.capacity() + self.heap_protected.capacity()) * size_of::<Bound>()
             + self.screen.retained_bytes()
     }
 
@@ -303,18 +306,9 @@ fn by_score(scores: &[f64], a: usize, b: usize) -> std::cmp::Ordering {
 /// # Complexity
 /// O(N + m log m) with a selection step, O(N log N) when `m` is close to N.
 fn relevance_prefix(scores: &[f64], m: usize, out: &mut Vec<usize>) {
-    let n = scores.len();
-    let m = m.min(n);
     out.clear();
-    if m == 0 {
-        return;
-    }
-    out.extend(0..n);
-    if m < n {
-        out.select_nth_unstable_by(m - 1, |&a, &b| by_score(scores, a, b));
-        out.truncate(m);
-    }
-    out.sort_unstable_by(|&a, &b| by_score(scores, a, b));
+    out.extend(0..scores.len());
+    top_by_score(scores, out, m);
 }
 
 /// Appends untaken, allowed candidates to `sel` in relevance order until it has `m` items.
@@ -385,18 +379,58 @@ fn relevance_selection(input: &RerankInput, params: &Params, ws: &mut Workspace)
         fill_by_score(input, params, ws, m, &mut sel);
         return sel;
     }
-    // O(N) per pick: fairness slates are short, and this keeps one obvious loop.
+    // Two queues in relevance order, the protected and the rest (Algorithm 2's P and U): each
+    // position takes the better head, or the protected head where the prefix needs it and one
+    // remains; a head over its cap is skipped for good (caps only tighten). Without caps no
+    // queue gives more than m items, so each is only the top m of its side: O(N + m log m),
+    // else a full sort, O(N log N).
+    let protected = input.fairness().map(|f| f.protected()).expect("checked above");
+    let (mut heads, mut queues) = ([0usize; 2], [Vec::new(), Vec::new()]);
+    for i in 0..input.len() {
+        queues[usize::from(protected[i])].push(i);
+    }
+    let depth = if params.max_per_category().is_some() { input.len() } else { m };
+    for queue in &mut queues {
+        top_by_score(input.scores(), queue, depth);
+    }
     while sel.indices.len() < m {
-        let restrict = ws.must_protect(sel.indices.len());
-        let best = passes(restrict).find_map(|r| {
-            (0..input.len())
-                .filter(|&i| eligible(input, params, ws, i, r))
-                .min_by(|&a, &b| by_score(input.scores(), a, b))
-        });
-        let Some(i) = best else { break };
-        take(input, ws, &mut sel, i, input.normalized()[i]);
+        for (head, queue) in heads.iter_mut().zip(&queues) {
+            while queue.get(*head).is_some_and(|&i| !allowed(input, params, &ws.group_taken, i)) {
+                *head += 1;
+            }
+        }
+        let [rest, prot] = [0, 1].map(|q| queues[q].get(heads[q]).copied());
+        let pick = match (prot, rest) {
+            (Some(p), _) if ws.must_protect(sel.indices.len()) => (p, 1),
+            (Some(p), Some(r)) => {
+                if by_score(input.scores(), p, r).is_lt() {
+                    (p, 1)
+                } else {
+                    (r, 0)
+                }
+            }
+            (Some(p), None) => (p, 1),
+            (None, Some(r)) => (r, 0),
+            (None, None) => break,
+        };
+        heads[pick.1] += 1;
+        take(input, ws, &mut sel, pick.0, input.normalized()[pick.0]);
     }
     sel
+}
+
+/// Keeps the first `depth` of `items` in relevance order (higher score, then lower index).
+/// O(len + depth·log depth) with a selection step.
+fn top_by_score(scores: &[f64], items: &mut Vec<usize>, depth: usize) {
+    if depth == 0 {
+        items.clear();
+        return;
+    }
+    if depth < items.len() {
+        items.select_nth_unstable_by(depth - 1, |&a, &b| by_score(scores, a, b));
+        items.truncate(depth);
+    }
+    items.sort_unstable_by(|&a, &b| by_score(scores, a, b));
 }
 
 /// Runs `algorithm` with a fresh workspace: convenient for one-off calls and tests.

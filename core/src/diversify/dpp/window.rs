@@ -160,8 +160,7 @@ fn run<S: Simd>(
         if ws.cancelled() {
             break;
         }
-        let residual = |ws: &mut Workspace, at: usize, _| Some(ws.running[ws.order[at]]);
-        let Some(at) = choose(input, params, ws, gain, &mut sel, residual) else { break };
+        let Some(at) = choose(input, params, ws, gain, &mut sel, &mut Kept) else { break };
         let pick = ws.order[at];
         let d2 = ws.running[pick];
         take(input, ws, &mut sel, pick, d2);
@@ -175,6 +174,28 @@ fn run<S: Simd>(
     sel
 }
 
+/// Where a step's scan gets `d_i²` from: `get(input, ws, at, floor)` gives it against the
+/// current window for `i = ws.order[at]`, or `None` when it can show without computing it that
+/// `i`'s gain is below `floor`, the best so far.
+///
+/// A trait with `#[inline(always)]` implementations rather than a closure: a closure is its own
+/// function without the SIMD dispatch's target features, and when LLVM declined to inline it
+/// (after the step choice became shared by both loops) the lazy loop's projections ran at the
+/// baseline instruction set, twice as slow.
+pub(super) trait Residual {
+    fn get(&mut self, input: &RerankInput, ws: &mut Workspace, at: usize, floor: Option<f64>) -> Option<f64>;
+}
+
+/// The eager loop keeps every residual in `ws.running`.
+struct Kept;
+
+impl Residual for Kept {
+    #[inline(always)]
+    fn get(&mut self, _: &RerankInput, ws: &mut Workspace, at: usize, _: Option<f64>) -> Option<f64> {
+        Some(ws.running[ws.order[at]])
+    }
+}
+
 /// One step's choice, as a position in `ws.order`: where the fairness floor needs a protected
 /// pick, the best among protected candidates first, and freely only when none remains; in each
 /// pass, when no candidate qualifies (windowed DPP with no candidate adding a direction), the
@@ -186,10 +207,10 @@ pub(super) fn choose(
     ws: &mut Workspace,
     gain: Gain,
     sel: &mut Selection,
-    mut residual: impl FnMut(&mut Workspace, usize, Option<f64>) -> Option<f64>,
+    residual: &mut impl Residual,
 ) -> Option<usize> {
     for r in passes(ws.must_protect(sel.indices.len())) {
-        if let Some((_, at)) = best_gain(input, params, ws, gain, r, &mut residual) {
+        if let Some((_, at)) = best_gain(input, params, ws, gain, r, residual) {
             return Some(at);
         }
         let fallback = (0..input.len())
@@ -210,10 +231,8 @@ pub(super) fn choose(
 /// (`ln d² ≤ 0`) or `(1 − λ)·s_i + λ` (`d ≤ 1`), so the scan stops at the first whose bound falls
 /// below the best so far, and the logarithms of the rest are never taken.
 /// Returns the best gain and its candidate's position in `ws.order` (the score order).
-/// `residual(ws, at, floor)` gives `d_i²` against the current window for `i = ws.order[at]`
-/// (the eager loop keeps it in `ws.running`; the lazy one computes it here, when the scan
-/// reaches `i`), or `None` when it can show without computing it that `i`'s gain is below
-/// `floor`, the best so far.
+/// `residual` gives `d_i²` ([`Residual`]): the eager loop keeps it in `ws.running`; the lazy one
+/// computes it here, when the scan reaches `i`.
 #[inline(always)]
 fn best_gain(
     input: &RerankInput,
@@ -221,7 +240,7 @@ fn best_gain(
     ws: &mut Workspace,
     gain: Gain,
     restrict: bool,
-    mut residual: impl FnMut(&mut Workspace, usize, Option<f64>) -> Option<f64>,
+    residual: &mut impl Residual,
 ) -> Option<(f64, usize)> {
     let lambda = params.lambda();
     let s = input.normalized();
@@ -236,7 +255,7 @@ fn best_gain(
         if !eligible(input, params, ws, i, restrict) {
             continue;
         }
-        let Some(d2) = residual(ws, at, best.map(|(b, _, _)| b)) else { continue };
+        let Some(d2) = residual.get(input, ws, at, best.map(|(b, _, _)| b)) else { continue };
         if best.is_some_and(|(b, _, _)| surely_below(gain, lambda, s[i], d2, b)) {
             continue;
         }

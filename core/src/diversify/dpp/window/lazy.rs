@@ -49,7 +49,7 @@ use pulp::Simd;
 
 use super::super::basis::{dot, push_basis_vector};
 use super::super::EPSILON;
-use super::{choose, surely_below, Gain};
+use super::{choose, surely_below, Gain, Residual};
 use crate::diversify::{take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
@@ -123,8 +123,7 @@ pub(super) fn run<S: Simd>(
         if ws.cancelled() {
             break;
         }
-        let residual = |ws: &mut Workspace, rank, floor| st.residual(input, ws, rank, floor);
-        let Some(rank) = choose(input, params, ws, gain, &mut sel, residual) else { break };
+        let Some(rank) = choose(input, params, ws, gain, &mut sel, &mut st) else { break };
         let d2 = st.residual(input, ws, rank, None).unwrap_or(0.0);
         take(input, ws, &mut sel, ws.order[rank], d2);
         if sel.indices.len() < m {
@@ -132,6 +131,13 @@ pub(super) fn run<S: Simd>(
         }
     }
     sel
+}
+
+impl Residual for Lazy {
+    #[inline(always)]
+    fn get(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize, floor: Option<f64>) -> Option<f64> {
+        self.residual(input, ws, rank, floor)
+    }
 }
 
 /// The window, its factor, and how much of the score order is kept up to date.
