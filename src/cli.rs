@@ -84,6 +84,13 @@ pub enum Command {
         /// Send embeddings as embedding_b64 (smaller, faster to parse).
         #[arg(long)]
         b64: bool,
+        /// Add each user's taste "profile" (category shares), for calibrated and miscalibration.
+        #[arg(long)]
+        with_profiles: bool,
+        /// Add each candidate's maker "group" (independent or mainline; the ranking model
+        /// under-scores independent makers) and a fairness floor for them on every request.
+        #[arg(long)]
+        with_groups: bool,
         /// Print one small request, for a first curl.
         #[arg(long)]
         one: bool,

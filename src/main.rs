@@ -103,7 +103,19 @@ fn run(command: Command) -> anyhow::Result<()> {
             eprintln!("{summary}");
             Ok(())
         }
-        Command::Sample { requests, candidates, dim, seed, with_clicks, b64, one, catalog, output } => {
+        Command::Sample {
+            requests,
+            candidates,
+            dim,
+            seed,
+            with_clicks,
+            b64,
+            with_profiles,
+            with_groups,
+            one,
+            catalog,
+            output,
+        } => {
             let spec = medley::offline::sample::SampleSpec {
                 requests: if one { 1 } else { requests },
                 candidates: candidates.unwrap_or(if one { 6 } else { 200 }),
@@ -111,6 +123,8 @@ fn run(command: Command) -> anyhow::Result<()> {
                 seed,
                 with_clicks,
                 b64,
+                with_profiles,
+                with_groups,
             };
             let mut writer = open_output(&output)?;
             match catalog {

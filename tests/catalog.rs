@@ -196,8 +196,7 @@ async fn unknown_ids_are_refused_or_dropped_and_sent_values_win() {
         candidates: 30,
         dim: 8,
         seed: 4,
-        with_clicks: false,
-        b64: false,
+        ..Default::default()
     };
     let mut sink = Vec::new();
     medley::offline::sample::write_with_catalog(&spec, &path, &mut sink).unwrap();

@@ -9,6 +9,9 @@
 //! item. With `--with-clicks` each request also lists held-out positives: items drawn from the
 //! user's *true* affinity (a different noise draw than the score, plus an appetite for the second
 //! category), so they are not simply the top scores and offline accuracy means something.
+//! `--with-profiles` adds each user's taste mix over categories as a `"profile"` (for
+//! calibration), and `--with-groups` each candidate's maker `"group"` (independent makers, whom
+//! the ranking model under-scores, or mainline) with a fairness floor for the independents.
 //!
 //! Everything derives from the seed through SplitMix64 (Steele, Lea & Flood, "Fast splittable
 //! pseudorandom number generators", OOPSLA 2014) and Box–Muller normals, so a seed always writes
@@ -31,7 +34,7 @@ pub const CATEGORIES: [(&str, &str, f64); 6] = [
 ];
 
 /// What to generate.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
 pub struct SampleSpec {
     /// Requests to write.
     pub requests: usize,
@@ -45,7 +48,29 @@ pub struct SampleSpec {
     pub with_clicks: bool,
     /// Send embeddings as `embedding_b64` instead of JSON arrays.
     pub b64: bool,
+    /// Add each user's taste `"profile"` (category shares), for `calibrated` and miscalibration.
+    pub with_profiles: bool,
+    /// Add each candidate's maker `"group"` and a fairness floor for the independent makers,
+    /// whom the ranking model under-scores (see [`INDEPENDENT`]).
+    pub with_groups: bool,
 }
+
+/// The protected group of `--with-groups`: small independent makers, one item in five. The
+/// ranking model under-scores them (their score's logit is lowered by [`INDEPENDENT_BIAS`]), a
+/// popularity bias their true appeal does not share, so the clicks do not follow it.
+pub const INDEPENDENT: &str = "independent";
+
+/// The other makers' group.
+pub const MAINLINE: &str = "mainline";
+
+/// How much the ranking model lowers an independent item's score logit.
+const INDEPENDENT_BIAS: f64 = 0.8;
+
+/// The fairness floor every request of `--with-groups` carries: the shop's promise of a 30 %
+/// share to independent makers (above their 1 in 5 of the catalogue), each prefix tested at
+/// alpha 0.1 (Zehlike et al. 2017); a slate of 10 must then hold at least one.
+const FLOOR_SHARE: f64 = 0.3;
+const FLOOR_ALPHA: f64 = 0.1;
 
 /// SplitMix64 with Box–Muller normals.
 #[derive(Debug, Clone)]
@@ -163,14 +188,22 @@ struct Catalogue {
     id: Vec<String>,
     /// Draw weight: the category's popularity times a Zipf-like rank factor within it.
     weight: Vec<f64>,
+    /// Whether the item comes from an independent maker: one in five, by a hash of the seed and
+    /// the item's position (no draw from the stream, so corpora without groups are unchanged).
+    independent: Vec<bool>,
 }
 
 impl Catalogue {
     fn new(spec: &SampleSpec, centroids: &[Vec<f64>], popularity: &[f64], rng: &mut Rng) -> Self {
         let d = centroids[0].len();
         let size = (5 * spec.candidates).max(1000);
-        let mut cat =
-            Self { category: Vec::new(), embedding: Vec::new(), id: Vec::new(), weight: Vec::new() };
+        let mut cat = Self {
+            category: Vec::new(),
+            embedding: Vec::new(),
+            id: Vec::new(),
+            weight: Vec::new(),
+            independent: Vec::new(),
+        };
         let mut per_category = vec![0_usize; CATEGORIES.len()];
         for _ in 0..size {
             let c = rng.weighted(popularity);
@@ -182,6 +215,9 @@ impl Catalogue {
             cat.weight.push(popularity[c] / (per_category[c] as f64).sqrt());
             cat.category.push(c);
             cat.embedding.push(e);
+            let item = cat.independent.len() as u64;
+            cat.independent
+                .push(crate::serve::config::mix64(spec.seed ^ item.wrapping_mul(0x9e37_79b9)).is_multiple_of(5));
         }
         cat
     }
@@ -256,8 +292,11 @@ fn request(
         let cat = catalogue.category[item];
         let e = &catalogue.embedding[item];
         let true_affinity = dot(&taste, e);
-        // The ranking model's score: the affinity seen through noise, squashed to (0, 1).
-        let score = 1.0 / (1.0 + (-(4.0 * true_affinity + 0.6 * rng.normal())).exp());
+        // The ranking model's score: the affinity seen through noise, squashed to (0, 1); with
+        // groups, independent makers are under-scored.
+        let independent = catalogue.independent[item];
+        let bias = if spec.with_groups && independent { INDEPENDENT_BIAS } else { 0.0 };
+        let score = 1.0 / (1.0 + (-(4.0 * true_affinity - bias + 0.6 * rng.normal())).exp());
         let (name, _, _) = CATEGORIES[cat];
         let id = catalogue.id[item].clone();
         let embedding: Vec<f32> = e.iter().map(|&x| x as f32).collect();
@@ -271,6 +310,9 @@ fn request(
             c["category"] = json!(name);
             c["embedding"] = json!(embedding);
         }
+        if spec.with_groups {
+            c["group"] = json!(if independent { INDEPENDENT } else { MAINLINE });
+        }
         candidates.push(c);
         // What the user would actually pick: affinity with its own noise, plus an appetite for
         // the second interest that the score does not see.
@@ -282,6 +324,21 @@ fn request(
         "unit_id": format!("user-{user:04}"),
         "candidates": candidates,
     });
+    if spec.with_profiles {
+        // The user's taste mix over categories, as a profile learnt from their history would
+        // give it: shares proportional to exp(3 · affinity to each category's centroid).
+        let raw: Vec<f64> = centroids.iter().map(|c| (3.0 * dot(&taste, c)).exp()).collect();
+        let total: f64 = raw.iter().sum();
+        let profile: serde_json::Map<String, Value> = CATEGORIES
+            .iter()
+            .zip(&raw)
+            .map(|((name, _, _), w)| ((*name).to_owned(), json!((w / total * 1e4).round() / 1e4)))
+            .collect();
+        request["profile"] = Value::Object(profile);
+    }
+    if spec.with_groups {
+        request["fairness"] = json!({"protected": INDEPENDENT, "share": FLOOR_SHARE, "alpha": FLOOR_ALPHA});
+    }
     if spec.with_clicks && spec.candidates > 0 {
         // 1 to 3 positives, drawn in proportion to exp(5 · affinity), without replacement.
         let clicks = 1 + rng.below(3.min(spec.candidates));
@@ -309,8 +366,14 @@ mod tests {
 
     #[test]
     fn same_seed_same_bytes_and_valid_requests() {
-        let spec =
-            SampleSpec { requests: 20, candidates: 50, dim: 16, seed: 7, with_clicks: true, b64: false };
+        let spec = SampleSpec {
+            requests: 20,
+            candidates: 50,
+            dim: 16,
+            seed: 7,
+            with_clicks: true,
+            ..SampleSpec::default()
+        };
         let a = corpus(&spec);
         assert_eq!(a, corpus(&spec));
         assert_ne!(a, corpus(&SampleSpec { seed: 8, ..spec }));
@@ -324,6 +387,36 @@ mod tests {
             assert!(clicked.iter().all(|c| ids.contains(&c.as_str().unwrap())));
             let request = crate::api::wire::decode_request(line).unwrap();
             engine.prepare(request).unwrap();
+            assert!(
+                v.get("profile").is_none()
+                    && v.get("fairness").is_none()
+                    && v["candidates"][0].get("group").is_none()
+            );
+        }
+        // The extras are added without disturbing the stream: scores of mainline items, ids and
+        // clicks stay the same, and the engine accepts the new fields.
+        let extra = corpus(&SampleSpec { with_profiles: true, with_groups: true, ..spec });
+        for (plain, rich) in
+            a.split(|&b| b == b'\n').zip(extra.split(|&b| b == b'\n')).filter(|(l, _)| !l.is_empty())
+        {
+            let (p, r): (Value, Value) =
+                (serde_json::from_slice(plain).unwrap(), serde_json::from_slice(rich).unwrap());
+            assert_eq!(p["clicked"], r["clicked"]);
+            for (pc, rc) in
+                p["candidates"].as_array().unwrap().iter().zip(r["candidates"].as_array().unwrap())
+            {
+                assert_eq!(pc["id"], rc["id"]);
+                if rc["group"] == MAINLINE {
+                    assert_eq!(pc["score"], rc["score"]);
+                } else {
+                    assert_eq!(rc["group"], INDEPENDENT);
+                    assert!(
+                        rc["score"].as_f64() < pc["score"].as_f64(),
+                        "independent makers are under-scored"
+                    );
+                }
+            }
+            engine.prepare(crate::api::wire::decode_request(rich).unwrap()).unwrap();
         }
     }
 }

@@ -109,7 +109,28 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
     let mut report = String::new();
     let k = opts.k;
     let _ = writeln!(report, "{} slates, {} items offered, k = {k}", corpus.len(), corpus.items);
-    let _ = writeln!(
+    // Miscalibration and the protected share only where some logged line had a profile or a
+    // fairness floor (the CSV always has both columns).
+    let show_miscal = rows.iter().any(|(_, p)| p.miscalibration.is_some());
+    let show_share = rows.iter().any(|(_, p)| p.protected_share.is_some());
+    let extra_header = |report: &mut String| {
+        if show_miscal {
+            let _ = write!(report, " {:>14}", "miscalibration");
+        }
+        if show_share {
+            let _ = write!(report, " {:>15}", "protected_share");
+        }
+    };
+    let extra_cells = |report: &mut String, p: &Point| {
+        let cell = |x: Option<f64>| x.map_or_else(|| "-".to_owned(), |x| format!("{x:.4}"));
+        if show_miscal {
+            let _ = write!(report, " {:>14}", cell(p.miscalibration));
+        }
+        if show_share {
+            let _ = write!(report, " {:>15}", cell(p.protected_share));
+        }
+    };
+    let _ = write!(
         report,
         "{:<12} {:>6} {:>9} {:>8} {:>16} {:>14} {:>9} {:>8} {:>6} {:>8} {:>8} {:>6}",
         "algorithm",
@@ -125,8 +146,10 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
         "coverage",
         "gini"
     );
+    extra_header(&mut report);
+    report.push('\n');
     for (label, p) in &rows {
-        let _ = writeln!(
+        let _ = write!(
             report,
             "{:<12} {:>6.2} {:>9.4} {:>8.4} {:>16.4} {:>14.4} {:>9.4} {:>8.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3}",
             label,
@@ -142,6 +165,8 @@ pub fn run(corpus: &Corpus, opts: &Options) -> anyhow::Result<String> {
             p.coverage,
             p.gini
         );
+        extra_cells(&mut report, p);
+        report.push('\n');
     }
     let _ = writeln!(report, "wrote {} and {}", csv_path.display(), svg_path.display());
     if let Some(rule) = &opts.pick {
