@@ -96,8 +96,8 @@ pub enum DppStrategy {
     Auto,
     /// The lazy max-heap kernel on every slate.
     Lazy,
-    /// The screened kernel where it applies (`α·(s_max − s_min) ≤ 40`, `α = (1 − λ)/λ`); slates
-    /// outside that range still run lazy.
+    /// The screened kernel where it applies (`α·(s_max − s_min) ≤ 40`, `α = (1 − λ)/λ`, no
+    /// fairness floor); other slates still run lazy.
     Screened,
 }
 
