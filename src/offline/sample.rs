@@ -216,8 +216,9 @@ impl Catalogue {
             cat.category.push(c);
             cat.embedding.push(e);
             let item = cat.independent.len() as u64;
-            cat.independent
-                .push(crate::serve::config::mix64(spec.seed ^ item.wrapping_mul(0x9e37_79b9)).is_multiple_of(5));
+            cat.independent.push(
+                crate::serve::config::mix64(spec.seed ^ item.wrapping_mul(0x9e37_79b9)).is_multiple_of(5),
+            );
         }
         cat
     }
