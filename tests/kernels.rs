@@ -38,6 +38,14 @@ fn assert_valid(out: &[usize], n: usize, k: usize, what: &str) {
     }
 }
 
+/// MMR's objective of candidate `i` after `prefix`, from its definition with f64 cosines (the
+/// max over an empty prefix is 0).
+fn mmr_objective(input: &RerankInput, lambda: f64, prefix: &[usize], i: usize) -> f64 {
+    let e = input.embeddings().unwrap();
+    let pen = prefix.iter().map(|&j| e.cosine(i, j)).fold(f64::NEG_INFINITY, f64::max);
+    (1.0 - lambda) * input.normalized()[i] - lambda * if prefix.is_empty() { 0.0 } else { pen }
+}
+
 fn arb_slate() -> impl Strategy<Value = (Vec<CandidateInput>, usize, f64)> {
     (
         1usize..40,
@@ -107,13 +115,9 @@ proptest! {
         if lambda == 0.0 {
             prop_assert_eq!(&fast_mmr, &reference::mmr(&input, &p));
         }
-        let e = input.embeddings().unwrap();
         for (step, &pick) in fast_mmr.iter().enumerate() {
             let prefix = &fast_mmr[..step];
-            let obj = |i: usize| {
-                let pen = prefix.iter().map(|&j| e.cosine(i, j)).fold(f64::NEG_INFINITY, f64::max);
-                (1.0 - lambda) * input.normalized()[i] - lambda * if prefix.is_empty() { 0.0 } else { pen }
-            };
+            let obj = |i: usize| mmr_objective(&input, lambda, prefix, i);
             let best = (0..input.len()).filter(|i| !prefix.contains(i)).map(obj).fold(f64::NEG_INFINITY, f64::max);
             prop_assert!(obj(pick) >= best - 1e-5, "step {step}: pick {pick} at {} vs best {best}", obj(pick));
         }
@@ -196,13 +200,9 @@ proptest! {
         if lambda == 0.0 {
             prop_assert_eq!(&fast_mmr, &reference::mmr(&input, &p));
         }
-        let e = input.embeddings().unwrap();
         for (step, &pick) in fast_mmr.iter().enumerate() {
             let prefix = &fast_mmr[..step];
-            let obj = |i: usize| {
-                let pen = prefix.iter().map(|&j| e.cosine(i, j)).fold(f64::NEG_INFINITY, f64::max);
-                (1.0 - lambda) * input.normalized()[i] - lambda * if prefix.is_empty() { 0.0 } else { pen }
-            };
+            let obj = |i: usize| mmr_objective(&input, lambda, prefix, i);
             let held = prefix.iter().filter(|&&i| protected[i]).count();
             let rest: Vec<usize> = (0..n).filter(|i| !prefix.contains(i)).collect();
             let restrict = held < minimums[step] && rest.iter().any(|&i| protected[i]);

@@ -147,12 +147,7 @@ fn best(
     let s = input.normalized();
     let step = picks.len();
     loop {
-        let from_protected = match (ws.heap_protected.peek(), ws.heap.peek().filter(|_| !restrict)) {
-            (None, None) => return None,
-            (Some(_), None) => true,
-            (None, Some(_)) => false,
-            (Some(a), Some(b)) => a > b,
-        };
+        let from_protected = ws.protected_top_first(restrict)?;
         let heap = if from_protected { &mut ws.heap_protected } else { &mut ws.heap };
         let top = heap.pop().expect("peeked");
         let i = top.index;

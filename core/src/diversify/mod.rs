@@ -240,6 +240,18 @@ impl Workspace {
         }
     }
 
+    /// Which lazy heap holds the larger top among those a step searches (the protected heap only
+    /// when `restrict`, else both): `Some(true)` the protected one, `None` when both are empty.
+    #[inline]
+    fn protected_top_first(&self, restrict: bool) -> Option<bool> {
+        match (self.heap_protected.peek(), self.heap.peek().filter(|_| !restrict)) {
+            (None, None) => None,
+            (Some(_), None) => Some(true),
+            (None, Some(_)) => Some(false),
+            (Some(a), Some(b)) => Some(a > b),
+        }
+    }
+
     /// Whether the pick after `picks` items must be protected: the prefix holds fewer than
     /// `m(picks + 1)`. Kernels then restrict their choice to protected candidates, and choose
     /// freely when none remains (the floor is met as far as possible).

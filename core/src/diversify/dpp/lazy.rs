@@ -114,12 +114,7 @@ fn best<S: Simd>(simd: S, input: &RerankInput, params: &Params, ws: &mut Workspa
     let s = input.normalized();
     let nb = ws.basis.len() / d;
     loop {
-        let from_protected = match (ws.heap_protected.peek(), ws.heap.peek().filter(|_| !restrict)) {
-            (None, None) => return None,
-            (Some(_), None) => true,
-            (None, Some(_)) => false,
-            (Some(a), Some(b)) => a > b,
-        };
+        let from_protected = ws.protected_top_first(restrict)?;
         let Workspace { heap, heap_protected, wide, basis, filled, running, group_taken, .. } = &mut *ws;
         let heap = if from_protected { heap_protected } else { heap };
         let mut top = heap.peek_mut().expect("peeked");
