@@ -21,36 +21,37 @@ use serde::{Deserialize, Serialize};
 
 use super::RequestError;
 
-/// One re-rank request.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
+/// One re-rank request. Serialising it gives the JSON body that decodes to it (the exposure log
+/// writes a gRPC request that way); absent fields stay absent.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, Serialize)]
 pub struct RerankRequest {
     /// Echoed back in the response.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub request_id: Option<String>,
     /// Traffic slice; absent means `"default"`.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub slice: Option<String>,
     /// Slate length; absent means the slice's.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub k: Option<u64>,
     /// Diversifier name; absent means the slice's.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub algorithm: Option<String>,
     /// Diversity weight; absent means the slice's.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub lambda: Option<f64>,
     /// A user or session id; the same unit always lands in the same arm of a slice.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub unit_id: Option<String>,
     /// Sliding window of `dpp` and `ssd` (2..=1000): compare with the last `window − 1` picks.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub window: Option<u64>,
     /// The user's taste profile: category → non-negative weight (normalised to sum 1). Required
     /// by `calibrated`; with any algorithm it adds `diversity.miscalibration` to the answer.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub profile: Option<std::collections::BTreeMap<String, f64>>,
     /// A fairness floor over the candidates' `group` (Zehlike et al. 2017).
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub fairness: Option<WireFairness>,
     /// The scored candidates, each a JSON object.
     #[serde(deserialize_with = "objects")]
@@ -167,23 +168,23 @@ pub fn f32_of(v: f64) -> Option<f32> {
 }
 
 /// One candidate on the wire.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, Serialize)]
 pub struct WireCandidate {
     /// Caller's item id.
     pub id: String,
     /// Caller's score.
     pub score: f64,
     /// Optional category.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub category: Option<String>,
     /// Embedding as a JSON array.
-    #[serde(default, deserialize_with = "f32_array")]
+    #[serde(default, deserialize_with = "f32_array", skip_serializing_if = "Option::is_none")]
     pub embedding: Option<Vec<f32>>,
     /// Embedding as standard base64 of little-endian f32 values.
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub embedding_b64: Option<String>,
     /// The provider group a fairness floor counts (`fairness.protected` names one).
-    #[serde(default)]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub group: Option<String>,
 }
 

@@ -22,6 +22,7 @@ use super::body::{self, BodyLimits, Reservation};
 use super::{Admitted, ApiError, AppState};
 use crate::api::wire::{decode_request, RerankRequest, RerankResponse};
 use crate::serve::engine::Engine;
+use crate::serve::exposure::{self, ExposureLog, LoggedRequest, Record, ServedRecord};
 use crate::serve::shadow::ShadowRunner;
 
 /// Bodies shorter than this are decoded inline on the async worker (about 100 candidates with
@@ -34,6 +35,8 @@ pub const OPENAPI_JSON: &str = include_str!("../../docs/openapi.json");
 /// What one served slate leaves behind: the answer, and the sizes metrics and logs record.
 pub(crate) struct Served {
     pub(crate) response: RerankResponse,
+    /// The request's unit (the exposure log samples by it).
+    unit_id: Option<String>,
     n: usize,
     k: usize,
 }
@@ -63,9 +66,14 @@ fn serve_prepared(
     ws: &mut medley_core::Workspace,
     shadow: &ShadowRunner,
 ) -> Result<Served, ApiError> {
-    let reranked = prepared.run(ws)?;
+    let mut reranked = prepared.run(ws)?;
     let response = reranked.to_response();
-    let served = Served { response, n: reranked.prepared.input.len(), k: reranked.selection.indices.len() };
+    let served = Served {
+        response,
+        unit_id: reranked.prepared.unit_id.take(),
+        n: reranked.prepared.input.len(),
+        k: reranked.selection.indices.len(),
+    };
     // The answer is built; the shadow gets the validated slate and the primary picks by move.
     if let Some(sh) = reranked.prepared.shadow {
         shadow.submit(reranked, sh);
@@ -92,6 +100,7 @@ pub(crate) async fn serve_one(
 ) -> Result<Served, ApiError> {
     let started = Instant::now();
     let shadow = state.shadow.clone();
+    let exposure = ExposureCapture::before(state, &engine, &job);
     let work = async {
         match job {
             Job::Json(bytes) if bytes.len() >= INLINE_BODY_BELOW => {
@@ -123,7 +132,7 @@ pub(crate) async fn serve_one(
             }
         }
     };
-    let served = match tokio::time::timeout(deadline, work).await {
+    let mut served = match tokio::time::timeout(deadline, work).await {
         Err(_) => return Err(ApiError::DeadlineExceeded { ms: deadline.as_millis() }),
         Ok(Err(crate::serve::pool::PoolError::Panicked(message))) => {
             state.metrics.panics.inc();
@@ -148,7 +157,78 @@ pub(crate) async fn serve_one(
     if let Some(dropped) = r.dropped.filter(|&d| d > 0) {
         state.metrics.unknown_items.with_label_values(&[&r.slice]).inc_by(dropped);
     }
+    if let Some(capture) = exposure {
+        capture.after(&mut served);
+    }
     Ok(served)
+}
+
+/// What the exposure log keeps of a request while it is served: the body (a reference-counted
+/// view, not a copy) or the re-encoded gRPC request, and the config digest.
+struct ExposureCapture {
+    log: Arc<ExposureLog>,
+    rate: f64,
+    digest: String,
+    request: CapturedRequest,
+}
+
+enum CapturedRequest {
+    /// A JSON body; whether it is sampled is known once its `unit_id` is decoded.
+    Json(Bytes),
+    /// A decoded request already found to be in the sample, re-encoded as JSON.
+    Sampled(Vec<u8>),
+}
+
+impl ExposureCapture {
+    /// `None` when the log is off, its sample rate is 0, or a decoded request is not sampled.
+    fn before(state: &AppState, engine: &Engine, job: &Job) -> Option<Self> {
+        let log = state.exposure.as_ref()?;
+        let rate = engine.config().exposure_log.as_ref()?.sample_rate;
+        if rate <= 0.0 {
+            return None;
+        }
+        let request = match job {
+            Job::Json(bytes) => CapturedRequest::Json(bytes.clone()),
+            Job::Decoded(request, _) => {
+                if !exposure::sampled(rate, request.unit_id.as_deref()) {
+                    return None;
+                }
+                CapturedRequest::Sampled(serde_json::to_vec(request).ok()?)
+            }
+        };
+        Some(Self { log: log.clone(), rate, digest: engine.digest().to_owned(), request })
+    }
+
+    /// Queues the record of a served request, assigning it a request id when it had none.
+    fn after(self, served: &mut Served) {
+        let request = match self.request {
+            CapturedRequest::Json(bytes) => {
+                if !exposure::sampled(self.rate, served.unit_id.as_deref()) {
+                    return;
+                }
+                LoggedRequest::Json(bytes)
+            }
+            CapturedRequest::Sampled(encoded) => LoggedRequest::Encoded(encoded),
+        };
+        let r = &mut served.response;
+        let request_id = r.request_id.get_or_insert_with(exposure::new_request_id).clone();
+        self.log.submit(Record {
+            ts: chrono::Utc::now(),
+            request,
+            served: ServedRecord {
+                request_id,
+                slice: r.slice.clone(),
+                arm: r.arm.clone(),
+                algorithm: r.algorithm,
+                lambda: r.lambda,
+                k: r.k,
+                config_generation: r.config_generation,
+                config_digest: self.digest,
+                items: r.items.iter().map(|i| i.id.clone()).collect(),
+                catalog_version: r.catalog_version.clone(),
+            },
+        });
+    }
 }
 
 /// Accepts `expected` with optional parameters (`application/json; charset=utf-8`).

@@ -32,6 +32,7 @@ pub use handlers::{INLINE_BODY_BELOW, OPENAPI_JSON};
 
 use crate::serve::config::ConfigError;
 use crate::serve::engine::Engine;
+use crate::serve::exposure::ExposureLog;
 use crate::serve::metrics::Metrics;
 use crate::serve::pool::{panic_message, Pool};
 use crate::serve::reload::{ConfigSource, Reloader};
@@ -53,6 +54,9 @@ pub enum StartError {
     /// The shadow worker could not start.
     #[error("starting the shadow worker: {0}")]
     Thread(#[from] std::io::Error),
+    /// The exposure log's directory or writer thread could not be set up.
+    #[error("starting the exposure log: {0}")]
+    ExposureLog(std::io::Error),
 }
 
 /// Everything a handler needs; cheap to clone.
@@ -67,6 +71,8 @@ pub struct AppState {
     pub metrics: Arc<Metrics>,
     /// The shadow queue and worker.
     pub shadow: Arc<ShadowRunner>,
+    /// The exposure log's queue and writer, when `[exposure_log]` was configured at start.
+    pub exposure: Option<Arc<ExposureLog>>,
     /// Reloads and runtime slice changes.
     pub reloader: Arc<Reloader>,
     /// `MEDLEY_ADMIN_TOKEN`; `None` disables the admin endpoints (403).
@@ -104,6 +110,12 @@ impl AppState {
         let max_in_flight = server.max_in_flight;
         let body_budget = body::BodyBudget::new(server.max_inflight_body_bytes);
         let catalog = ConfigSource::load_catalog(&config)?;
+        let exposure = match &config.exposure_log {
+            Some(settings) => Some(Arc::new(
+                ExposureLog::start(settings, metrics.clone()).map_err(StartError::ExposureLog)?,
+            )),
+            None => None,
+        };
         let first = Engine::new(config, 1).with_catalog(catalog);
         metrics.set_config(1, first.digest());
         metrics.set_catalog(first.catalog().map(|c| &**c));
@@ -115,6 +127,7 @@ impl AppState {
             pool: Arc::new(pool),
             metrics,
             shadow: Arc::new(shadow),
+            exposure,
             reloader,
             admin_token: admin_token.filter(|t| !t.is_empty()).map(Into::into),
             permits: Arc::new(Semaphore::new(max_in_flight)),
@@ -296,4 +309,8 @@ pub async fn serve_with(
     }
     let _ = sighup.await;
     let _ = tokio::task::spawn_blocking(move || shadow.stop()).await;
+    // Every front end has answered its last request: write what the exposure queue holds.
+    if let Some(log) = state.exposure.clone() {
+        let _ = tokio::task::spawn_blocking(move || log.stop()).await;
+    }
 }

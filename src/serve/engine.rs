@@ -238,6 +238,7 @@ impl Engine {
         let shadow = shadow.filter(|sh| !sh.algorithm.needs_profile() || input.profile().is_some());
         Ok(Prepared {
             request_id: request.request_id,
+            unit_id: request.unit_id,
             slice: slice.name.clone(),
             arm: arm.name.clone(),
             algorithm,
@@ -282,6 +283,8 @@ fn error_index(e: &ValidationError) -> Option<usize> {
 pub struct Prepared {
     /// Echoed back.
     pub request_id: Option<String>,
+    /// The request's unit, when it named one (the exposure log samples by it).
+    pub unit_id: Option<String>,
     /// Name of the slice serving it.
     pub slice: Arc<str>,
     /// Name of the arm serving it.

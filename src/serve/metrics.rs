@@ -81,6 +81,12 @@ pub struct Metrics {
     pub catalog_items: IntGauge,
     /// `medley_unknown_items_total{slice}`: candidates dropped because the catalog lacks them.
     pub unknown_items: IntCounterVec,
+    /// `medley_exposure_log_records_total`: exposure records written.
+    pub exposure_records: IntCounter,
+    /// `medley_exposure_log_dropped_total`: exposure records dropped because the queue was full.
+    pub exposure_dropped: IntCounter,
+    /// `medley_exposure_log_write_errors_total`: exposure records lost to a write error.
+    pub exposure_write_errors: IntCounter,
     /// `medley_shadow_runs_total{slice}`.
     pub shadow_runs: IntCounterVec,
     /// `medley_shadow_dropped_total{slice}`: shadow jobs dropped because the queue was full.
@@ -166,6 +172,16 @@ impl Metrics {
             &["slice"],
         ));
         let panics = must(IntCounter::new("medley_panics_total", "Panics caught and answered with 500."));
+        let exposure_records =
+            must(IntCounter::new("medley_exposure_log_records_total", "Exposure log records written."));
+        let exposure_dropped = must(IntCounter::new(
+            "medley_exposure_log_dropped_total",
+            "Exposure log records dropped because the writer's queue was full (records or bytes).",
+        ));
+        let exposure_write_errors = must(IntCounter::new(
+            "medley_exposure_log_write_errors_total",
+            "Exposure log records lost because writing them failed (e.g. a full disk).",
+        ));
         let shed = must(IntCounter::new(
             "medley_shed_total",
             "Requests refused with 503 because the concurrency limit was reached.",
@@ -314,6 +330,9 @@ impl Metrics {
         reg(Box::new(catalog_items.clone()));
         reg(Box::new(unknown_items.clone()));
         reg(Box::new(fairness_shortfall.clone()));
+        reg(Box::new(exposure_records.clone()));
+        reg(Box::new(exposure_dropped.clone()));
+        reg(Box::new(exposure_write_errors.clone()));
         reg(Box::new(shadow_runs.clone()));
         reg(Box::new(shadow_dropped.clone()));
         reg(Box::new(shadow_duration.clone()));
@@ -350,6 +369,9 @@ impl Metrics {
             catalog_items,
             unknown_items,
             fairness_shortfall,
+            exposure_records,
+            exposure_dropped,
+            exposure_write_errors,
             shadow_runs,
             shadow_dropped,
             shadow_duration,

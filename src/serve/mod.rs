@@ -10,12 +10,14 @@
 //! - [`reload`]: where the config comes from, runtime slices, the file watch, SIGHUP;
 //! - [`pool`]: the bounded CPU pool kernels run on, with per-thread workspaces;
 //! - [`shadow`]: the bounded shadow queue and its worker;
+//! - [`exposure`]: the exposure log of served requests and its writer thread;
 //! - [`metrics`]: the Prometheus registry and every handle;
 //! - [`shutdown`]: the SIGINT/SIGTERM future and the token background tasks hold.
 
 pub mod catalog;
 pub mod config;
 pub mod engine;
+pub mod exposure;
 pub mod metrics;
 pub mod pool;
 pub mod reload;

@@ -169,6 +169,11 @@ impl ConfigSource {
                 config.catalog = Some(dir.join(catalog));
             }
         }
+        if let (Some(log), Some(file)) = (&mut config.exposure_log, &self.file) {
+            if log.dir.is_relative() {
+                log.dir = file.parent().unwrap_or_else(|| Path::new("")).join(&log.dir);
+            }
+        }
         Ok(config)
     }
 
@@ -350,6 +355,14 @@ impl Reloader {
         {
             tracing::warn!(
                 "listeners, pool_threads, max_in_flight, max_inflight_body_bytes, header_timeout_ms and max_connections change only on restart; keeping the running ones"
+            );
+        }
+        let log_place = |c: &Config| {
+            c.exposure_log.as_ref().map(|l| (l.dir.clone(), l.max_file_bytes, l.queue, l.queue_bytes))
+        };
+        if log_place(&config) != log_place(old.config()) {
+            tracing::warn!(
+                "exposure_log dir, max_file_bytes, queue and queue_bytes (and turning the log on) change only on restart; sample_rate applies now"
             );
         }
         let generation = old.generation() + u64::from(config_changed);

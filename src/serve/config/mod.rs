@@ -19,10 +19,10 @@ mod validated;
 pub use describe::describe;
 pub use error::ConfigError;
 pub use hash::{arm_bucket, arm_hash, fnv1a64, mix64};
-pub use raw::{RawArm, RawCatalog, RawConfig, RawServer, RawShadow, RawSlice};
+pub use raw::{RawArm, RawCatalog, RawConfig, RawExposureLog, RawServer, RawShadow, RawSlice};
 pub use validated::{
-    validate_slice, Arm, Config, ServerSettings, Settings, Shadow, Slice, UnknownItems, IMPLICIT_ARM,
-    SLICE_DEFAULT_ALGORITHM, SLICE_DEFAULT_K,
+    validate_slice, Arm, Config, ExposureLogSettings, ServerSettings, Settings, Shadow, Slice, UnknownItems,
+    IMPLICIT_ARM, SLICE_DEFAULT_ALGORITHM, SLICE_DEFAULT_K,
 };
 
 /// The configuration compiled into the binary; `medley serve` without `--config` serves it.

@@ -19,6 +19,29 @@ pub struct RawConfig {
     /// The item catalog, when requests may send ids without embeddings.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub catalog: Option<RawCatalog>,
+    /// The exposure log: what was served, one JSON line a request, for offline replay.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub exposure_log: Option<RawExposureLog>,
+}
+
+/// The `[exposure_log]` table.
+#[derive(Debug, Clone, Default, PartialEq, Deserialize, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawExposureLog {
+    /// Directory the files go to (created if missing); a relative path is relative to the
+    /// config file's directory.
+    pub dir: String,
+    /// Share of traffic logged, in `[0, 1]` (default 1): by a stable hash of `unit_id` when the
+    /// request has one, else per request.
+    pub sample_rate: Option<f64>,
+    /// A file is closed and a new one started once it holds this many bytes (default 256 MiB).
+    pub max_file_bytes: Option<u64>,
+    /// Records waiting for the writer; beyond it new ones are dropped and counted (default
+    /// 10 000).
+    pub queue: Option<u64>,
+    /// Bytes of records waiting for the writer; beyond it new ones are dropped and counted
+    /// (default 256 MiB), so a queue of large slates stays bounded in memory too.
+    pub queue_bytes: Option<u64>,
 }
 
 /// The `[catalog]` table.

@@ -169,6 +169,60 @@ pub struct Config {
     ///
     /// [`ConfigSource`]: crate::serve::reload::ConfigSource
     pub catalog: Option<std::path::PathBuf>,
+    /// The exposure log's settings, when `[exposure_log]` is present.
+    pub exposure_log: Option<ExposureLogSettings>,
+}
+
+/// Validated `[exposure_log]` settings.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExposureLogSettings {
+    /// Directory of the files ([`ConfigSource`] resolves a relative path against the config
+    /// file's directory).
+    ///
+    /// [`ConfigSource`]: crate::serve::reload::ConfigSource
+    pub dir: std::path::PathBuf,
+    /// Share of traffic logged, in `[0, 1]`.
+    pub sample_rate: f64,
+    /// Rotation size.
+    pub max_file_bytes: u64,
+    /// Records the queue holds.
+    pub queue: usize,
+    /// Bytes the queue holds.
+    pub queue_bytes: usize,
+}
+
+/// Default `exposure_log.max_file_bytes`: 256 MiB.
+const EXPOSURE_DEFAULT_FILE_BYTES: u64 = 256 << 20;
+/// Default `exposure_log.queue`.
+const EXPOSURE_DEFAULT_QUEUE: u64 = 10_000;
+/// Default `exposure_log.queue_bytes`: 256 MiB.
+const EXPOSURE_DEFAULT_QUEUE_BYTES: u64 = 256 << 20;
+
+fn validate_exposure_log(raw: &super::raw::RawExposureLog) -> Result<ExposureLogSettings, ConfigError> {
+    if raw.dir.is_empty() {
+        return Err(invalid("exposure_log.dir", "empty; name a directory, or drop the [exposure_log] table"));
+    }
+    let sample_rate = raw.sample_rate.unwrap_or(1.0);
+    if !(0.0..=1.0).contains(&sample_rate) {
+        return Err(invalid("exposure_log.sample_rate", format!("{sample_rate} is outside [0, 1]")));
+    }
+    let max_file_bytes = raw.max_file_bytes.unwrap_or(EXPOSURE_DEFAULT_FILE_BYTES);
+    if max_file_bytes < 4096 {
+        return Err(invalid("exposure_log.max_file_bytes", format!("{max_file_bytes} is below 4096")));
+    }
+    let count = |key: &str, v: Option<u64>, default: u64| -> Result<usize, ConfigError> {
+        match v.unwrap_or(default) {
+            0 => Err(invalid(format!("exposure_log.{key}"), "must be at least 1")),
+            n => usize::try_from(n).map_err(|_| invalid(format!("exposure_log.{key}"), "too large")),
+        }
+    };
+    Ok(ExposureLogSettings {
+        dir: std::path::PathBuf::from(&raw.dir),
+        sample_rate,
+        max_file_bytes,
+        queue: count("queue", raw.queue, EXPOSURE_DEFAULT_QUEUE)?,
+        queue_bytes: count("queue_bytes", raw.queue_bytes, EXPOSURE_DEFAULT_QUEUE_BYTES)?,
+    })
 }
 
 /// Defaults for keys a slice leaves out.
@@ -233,7 +287,8 @@ impl Config {
             }
             Some(c) => Some(std::path::PathBuf::from(&c.path)),
         };
-        Ok(Self { server, slices, raw, catalog })
+        let exposure_log = raw.exposure_log.as_ref().map(validate_exposure_log).transpose()?;
+        Ok(Self { server, slices, raw, catalog, exposure_log })
     }
 
     /// The slice called `name`.
@@ -579,6 +634,23 @@ mod tests {
 
     fn err(text: &str) -> String {
         Config::from_toml(text).unwrap_err().to_string()
+    }
+
+    /// Issue 18: the exposure log's table, its defaults and its refusals.
+    #[test]
+    fn exposure_log_validates_with_defaults_and_refuses_naming_the_key() {
+        let ok = Config::from_toml("[exposure_log]\ndir = \"logs\"\n[slices.default]\n").unwrap();
+        let log = ok.exposure_log.unwrap();
+        assert_eq!(log.dir, std::path::Path::new("logs"));
+        assert_eq!((log.sample_rate, log.max_file_bytes, log.queue), (1.0, 256 << 20, 10_000));
+        assert!(Config::embedded_default().exposure_log.is_none(), "off unless configured");
+        let t = |extra: &str| err(&format!("[exposure_log]\ndir = \"logs\"\n{extra}\n[slices.default]\n"));
+        assert!(t("sample_rate = 1.5").starts_with("exposure_log.sample_rate:"));
+        assert!(t("sample_rate = -0.1").starts_with("exposure_log.sample_rate:"));
+        assert!(t("queue = 0").starts_with("exposure_log.queue:"));
+        assert!(t("max_file_bytes = 100").starts_with("exposure_log.max_file_bytes:"));
+        assert!(t("rotate = 1").contains("unknown field `rotate`"));
+        assert!(err("[exposure_log]\ndir = \"\"\n[slices.default]\n").starts_with("exposure_log.dir:"));
     }
 
     #[test]
