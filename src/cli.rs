@@ -105,9 +105,21 @@ pub enum Command {
     /// Replay logged requests with their clicks over a grid of algorithms and lambdas, and report
     /// the accuracy–diversity frontier (table, frontier.csv, frontier.svg).
     Replay {
-        /// Logged requests, one per line, each with a "clicked" list of ids (`medley sample --with-clicks` writes such a file).
+        /// Logged traffic: a file or a directory of them (.jsonl, .json or .ndjson, optionally .zst),
+        /// in the corpus format (requests with "clicked" ids, as `medley sample --with-clicks` writes)
+        /// or the exposure log `medley serve` writes.
         #[arg(long)]
         input: PathBuf,
+        /// Clicks to join by request id: one {"request_id": "...", "clicked": ["id", ...]} a line.
+        #[arg(long, value_name = "FILE")]
+        clicks: Option<PathBuf>,
+        /// Exponent eta of the examination propensity (1/rank)^eta of the position-debiased
+        /// ips_clicks column.
+        #[arg(long, default_value_t = 1.0)]
+        propensity_eta: f64,
+        /// Largest weight of one click in ips_clicks.
+        #[arg(long, default_value_t = 10.0)]
+        ips_clip: f64,
         /// Algorithms to compare, comma-separated (relevance, mmr, dpp, quota, ssd, calibrated;
         /// calibrated needs a "profile" on every line).
         #[arg(long, default_value = "relevance,mmr,dpp,quota")]
@@ -128,9 +140,9 @@ pub enum Command {
         /// Item catalog (Parquet or Arrow IPC) for logged candidates without embeddings.
         #[arg(long, value_name = "FILE")]
         catalog: Option<PathBuf>,
-        /// Choose per algorithm the most diverse lambda within a bound, e.g. "ndcg>=0.95*baseline"
-        /// (metrics: ndcg, recall, ndcg_reachable, recall_reachable,
-        /// relevance_retained), and print a slice config for it.
+        /// Choose per algorithm the most diverse lambda shown non-inferior to a bound, e.g.
+        /// "ndcg>=0.95*baseline" (metrics: ndcg, recall, ndcg_reachable, recall_reachable,
+        /// relevance_retained, alpha_ndcg), refine it by bisection, and print a slice config.
         #[arg(long)]
         pick: Option<String>,
     },

@@ -133,7 +133,19 @@ fn run(command: Command) -> anyhow::Result<()> {
                     .with_context(|| format!("writing the corpus and the catalog {}", path.display())),
             }
         }
-        Command::Replay { input, algorithms, lambdas, k, windows, out, catalog, pick } => {
+        Command::Replay {
+            input,
+            clicks,
+            propensity_eta,
+            ips_clip,
+            algorithms,
+            lambdas,
+            k,
+            windows,
+            out,
+            catalog,
+            pick,
+        } => {
             let algorithms = algorithms
                 .split(',')
                 .map(|name| {
@@ -152,21 +164,26 @@ fn run(command: Command) -> anyhow::Result<()> {
             if let Some(w) = windows.iter().find(|w| !(2..=1000).contains(*w)) {
                 anyhow::bail!("--windows: {w} is outside 2..=1000");
             }
+            anyhow::ensure!(
+                propensity_eta.is_finite() && propensity_eta >= 0.0,
+                "--propensity-eta {propensity_eta} must be a finite number >= 0"
+            );
+            anyhow::ensure!(ips_clip.is_finite() && ips_clip >= 1.0, "--ips-clip {ips_clip} must be >= 1");
             // Replay validates on an unlocked default slice with the embedded limits.
             let engine = engine_with_catalog(Config::embedded_default(), catalog)?;
-            let file = std::fs::File::open(&input).with_context(|| format!("opening {}", input.display()))?;
-            let corpus = medley::offline::replay::read_corpus(&engine, &mut BufReader::new(file))
-                .context("reading the corpus")?;
-            for (line, why) in corpus.skipped.iter().take(5) {
-                eprintln!("medley replay: skipped line {line}: {why}");
-            }
-            anyhow::ensure!(
-                !corpus.is_empty(),
-                "no usable line in {} (each needs embeddings and \"clicked\")",
-                input.display()
-            );
-            let opts = medley::offline::replay::Options { algorithms, lambdas, windows, k, out, pick };
-            print!("{}", medley::offline::replay::run(&corpus, &opts)?);
+            let clicks = clicks.map(|path| medley::offline::replay::Clicks::read(&path)).transpose()?;
+            let opts = medley::offline::replay::Options {
+                algorithms,
+                lambdas,
+                windows,
+                k,
+                out,
+                pick,
+                eta: propensity_eta,
+                clip: ips_clip,
+                progress: true,
+            };
+            print!("{}", medley::offline::replay::run(&engine, &input, clicks.as_ref(), &opts)?);
             Ok(())
         }
         Command::CheckConfig { file } => {

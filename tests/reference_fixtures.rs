@@ -100,7 +100,7 @@ fn gini_matches_mean_difference_definition() {
 /// the whole replay path (parsing the logged line, deduplicating its clicks, validating it).
 #[test]
 fn replay_ndcg_and_recall_match_numpy_standard_and_reachable() {
-    use medley::offline::replay::{evaluate, read_corpus};
+    use medley::offline::replay::{evaluate_lines, Cell, GridOptions};
     use medley::serve::config::Config;
     use medley::serve::engine::Engine;
     let engine = Engine::new(Config::embedded_default(), 1);
@@ -110,10 +110,11 @@ fn replay_ndcg_and_recall_match_numpy_standard_and_reachable() {
     let mut differ = 0;
     for (n, case) in cases.iter().enumerate() {
         let line = serde_json::to_vec(&case["line"]).unwrap();
-        let corpus = read_corpus(&engine, &mut &line[..]).unwrap();
-        assert_eq!(corpus.len(), 1, "case {n}: {:?}", corpus.skipped);
         let k = case["k"].as_u64().unwrap() as usize;
-        let p = evaluate(&corpus, relevance, 0.0, k).unwrap();
+        let cell = Cell { algorithm: relevance, window: None, lambda: 0.0 };
+        let (points, stats) = evaluate_lines(&engine, &line, &[cell], GridOptions::new(k)).unwrap();
+        assert_eq!(stats.slates, 1, "case {n}: {:?}", stats.first_invalid);
+        let p = &points[1];
         for (name, got) in [
             ("ndcg", p.ndcg),
             ("recall", p.recall),

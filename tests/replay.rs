@@ -6,12 +6,26 @@
 use std::process::Command;
 
 use medley::diversify::by_name;
-use medley::offline::replay::{evaluate, read_corpus, Corpus};
+use medley::offline::replay::{evaluate_lines, Cell, GridOptions, Point};
 use medley::offline::sample::{write, SampleSpec};
 use medley::serve::config::Config;
 use medley::serve::engine::Engine;
 
-fn corpus() -> Corpus {
+/// One cell over the lines: (baseline, cell).
+fn evaluate(
+    lines: &[u8],
+    algorithm: &'static dyn medley::Diversifier,
+    lambda: f64,
+    k: usize,
+) -> (Point, Point) {
+    let engine = Engine::new(Config::embedded_default(), 1);
+    let (points, _) =
+        evaluate_lines(&engine, lines, &[Cell { algorithm, window: None, lambda }], GridOptions::new(k))
+            .unwrap();
+    (points[0].clone(), points[1].clone())
+}
+
+fn corpus() -> Vec<u8> {
     let spec = SampleSpec {
         requests: 120,
         candidates: 80,
@@ -23,19 +37,18 @@ fn corpus() -> Corpus {
     let mut bytes = Vec::new();
     write(&spec, &mut bytes).unwrap();
     let engine = Engine::new(Config::embedded_default(), 1);
-    let corpus = read_corpus(&engine, &mut &bytes[..]).unwrap();
-    assert_eq!(corpus.len(), 120);
-    assert!(corpus.skipped.is_empty());
-    corpus
+    let (_, stats) = evaluate_lines(&engine, &bytes, &[], GridOptions::new(10)).unwrap();
+    assert_eq!((stats.slates, stats.invalid, stats.without_clicks), (120, 0, 0));
+    bytes
 }
 
 #[test]
 fn lambda_zero_is_the_baseline_and_lambda_buys_diversity() {
     let corpus = corpus();
-    let baseline = evaluate(&corpus, by_name("relevance").unwrap(), 0.0, 10).unwrap();
+    let (baseline, _) = evaluate(&corpus, by_name("relevance").unwrap(), 0.0, 10);
     for name in ["mmr", "dpp", "quota"] {
         let algorithm = by_name(name).unwrap();
-        let at = |lambda: f64| evaluate(&corpus, algorithm, lambda, 10).unwrap();
+        let at = |lambda: f64| evaluate(&corpus, algorithm, lambda, 10).1;
         let zero = at(0.0);
         for (a, b) in [
             (zero.recall, baseline.recall),
@@ -176,7 +189,7 @@ fn windows_and_calibration_join_the_replay_grid() {
 
     let out = replay(&plain, "calibrated", &[]);
     assert!(!out.status.success());
-    assert!(String::from_utf8_lossy(&out.stderr).contains("60 of 60 lines have none"));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("line 1 (counted over all input files) has none"));
     let out = replay(&with_profiles, "calibrated", &[]);
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     assert!(String::from_utf8(out.stdout).unwrap().contains("calibrated"));
@@ -226,20 +239,17 @@ fn profiles_and_groups_from_the_sample_drive_calibration_and_the_fairness_floor(
         c.sort_by(|a, b| b.0.total_cmp(&a.0));
         top_share += c[..10].iter().filter(|x| x.1).count() as f64 / 10.0 / 80.0;
     }
-    let engine = Engine::new(Config::embedded_default(), 1);
-    let corpus = read_corpus(&engine, &mut &bytes[..]).unwrap();
-    assert_eq!((corpus.len(), corpus.skipped.len()), (80, 0));
-
+    let corpus = bytes;
     let calibrated = by_name("calibrated").unwrap();
     let (plain, calibrating) =
-        (evaluate(&corpus, calibrated, 0.0, 10).unwrap(), evaluate(&corpus, calibrated, 0.8, 10).unwrap());
+        (evaluate(&corpus, calibrated, 0.0, 10).1, evaluate(&corpus, calibrated, 0.8, 10).1);
     let (before, after) = (plain.miscalibration.unwrap(), calibrating.miscalibration.unwrap());
     assert!(after < 0.5 * before, "calibration lowers KL(p ‖ q̃): {before} -> {after}");
 
     let need = medley::fairness::minimum_protected(10, 0.3, 0.1)[9] as f64 / 10.0;
     assert!(need > 0.0 && top_share < need, "the score order under-represents them: {top_share} vs {need}");
     for name in ["relevance", "mmr", "dpp", "calibrated"] {
-        let share = evaluate(&corpus, by_name(name).unwrap(), 0.5, 10).unwrap().protected_share.unwrap();
+        let share = evaluate(&corpus, by_name(name).unwrap(), 0.5, 10).1.protected_share.unwrap();
         assert!(share >= need, "{name}: protected share {share} under the floor's {need}");
     }
 }

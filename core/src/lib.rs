@@ -10,7 +10,9 @@
 //!   quota), their SIMD inner loops and slow reference versions.
 //! - [`measures`]: category entropy, intra-list distance, coverage, Gini, and how two slates of
 //!   one request differ (overlap, rank-biased overlap).
-//! - [`evaluate`]: the replay metrics: nDCG@k and recall@k, standard and candidate-restricted.
+//! - [`evaluate`]: the replay metrics: nDCG@k and recall@k, standard and candidate-restricted,
+//!   α-nDCG@k, and position-debiased clicks (IPS).
+//! - [`bootstrap`]: the streaming Poisson bootstrap behind the replay's confidence intervals.
 //! - [`fairness`]: the ranked group fairness floor (FA*IR's `m(t)` table) every diversifier
 //!   respects when a slate carries one.
 //! - [`fuzz`]: the invariant checks the `diversify` fuzz target drives.
@@ -48,6 +50,7 @@
 
 #![forbid(unsafe_code)]
 
+pub mod bootstrap;
 pub mod diversify;
 pub mod evaluate;
 pub mod fairness;

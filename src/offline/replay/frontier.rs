@@ -36,6 +36,23 @@ pub struct Point {
     /// Mean protected share over the slates whose line carried a fairness floor; `None` without
     /// any.
     pub protected_share: Option<f64>,
+    /// Mean position-debiased clicks@k over the slates whose line logged the served slate;
+    /// `None` without any.
+    pub ips_clicks: Option<f64>,
+    /// Mean α-nDCG@k (α = 0.5, categories as subtopics).
+    pub alpha_ndcg: f64,
+    /// 95 % bootstrap interval of the mean nDCG@k.
+    pub ndcg_lo: f64,
+    /// Upper end.
+    pub ndcg_hi: f64,
+    /// 95 % bootstrap interval of the mean entropy.
+    pub entropy_lo: f64,
+    /// Upper end.
+    pub entropy_hi: f64,
+    /// Paired 95 % bootstrap interval of the difference of mean nDCG@k from the baseline's.
+    pub ndcg_diff_lo: f64,
+    /// Upper end.
+    pub ndcg_diff_hi: f64,
 }
 
 /// Parses `0,0.1,0.5` or `start:end:step` (inclusive of `end` within rounding).
@@ -62,7 +79,8 @@ pub fn parse_lambdas(text: &str) -> Result<Vec<f64>, String> {
 /// A `--pick` rule: keep `metric >= factor × baseline`, maximise mean entropy.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct PickRule {
-    /// `ndcg`, `recall`, `ndcg_reachable`, `recall_reachable` or `relevance_retained`.
+    /// `ndcg`, `recall`, `ndcg_reachable`, `recall_reachable`, `relevance_retained` or
+    /// `alpha_ndcg`.
     pub metric: &'static str,
     /// Share of the relevance baseline that must be kept.
     pub factor: f64,
@@ -75,7 +93,7 @@ pub struct PickRule {
 pub fn parse_pick(text: &str) -> Result<PickRule, String> {
     let expected = || {
         format!(
-            "{text:?}: expected METRIC>=FACTOR*baseline with METRIC one of ndcg, recall, ndcg_reachable, recall_reachable, relevance_retained"
+            "{text:?}: expected METRIC>=FACTOR*baseline with METRIC one of ndcg, recall, ndcg_reachable, recall_reachable, relevance_retained, alpha_ndcg"
         )
     };
     let (metric, rest) = text.split_once(">=").ok_or_else(expected)?;
@@ -85,11 +103,28 @@ pub fn parse_pick(text: &str) -> Result<PickRule, String> {
         "ndcg_reachable" => "ndcg_reachable",
         "recall_reachable" => "recall_reachable",
         "relevance_retained" => "relevance_retained",
+        "alpha_ndcg" => "alpha_ndcg",
         _ => return Err(expected()),
     };
     let factor = rest.trim().strip_suffix("*baseline").ok_or_else(expected)?;
     let factor: f64 = factor.trim().parse().map_err(|_| expected())?;
     Ok(PickRule { metric, factor })
+}
+
+impl PickRule {
+    /// The per-slate column the rule constrains.
+    #[must_use]
+    pub fn column(&self) -> usize {
+        use super::evaluate::col;
+        match self.metric {
+            "recall" => col::RECALL,
+            "ndcg_reachable" => col::NDCG_REACHABLE,
+            "recall_reachable" => col::RECALL_REACHABLE,
+            "relevance_retained" => col::RETAINED,
+            "alpha_ndcg" => col::ALPHA_NDCG,
+            _ => col::NDCG,
+        }
+    }
 }
 
 impl Point {
@@ -110,16 +145,19 @@ impl Point {
             "ndcg_reachable" => self.ndcg_reachable,
             "recall_reachable" => self.recall_reachable,
             "relevance_retained" => self.relevance_retained,
+            "alpha_ndcg" => self.alpha_ndcg,
             _ => self.ndcg,
         }
     }
 }
 
-/// Per algorithm (and window), the most diverse point (highest mean entropy) that keeps the
-/// rule; `None` for one with no such point.
+/// Per algorithm (and window), the most diverse point (highest mean entropy) among those for
+/// which `holds` (the rule's non-inferiority test) is true; `None` for one with no such point.
 #[must_use]
-pub fn pick<'a>(points: &'a [Point], baseline: &Point, rule: &PickRule) -> Vec<(String, Option<&'a Point>)> {
-    let floor = rule.factor * baseline.metric(rule.metric);
+pub fn pick<'a>(
+    points: &'a [Point],
+    holds: &dyn Fn(usize) -> bool,
+) -> Vec<(String, Option<(usize, &'a Point)>)> {
     let mut names: Vec<String> = Vec::new();
     for p in points {
         if !names.contains(&p.label()) {
@@ -129,23 +167,23 @@ pub fn pick<'a>(points: &'a [Point], baseline: &Point, rule: &PickRule) -> Vec<(
     names
         .into_iter()
         .map(|name| {
-            let best = points
-                .iter()
-                .filter(|p| p.label() == name && p.metric(rule.metric) >= floor)
-                .max_by(|a, b| a.entropy.total_cmp(&b.entropy).then(b.lambda.total_cmp(&a.lambda)));
+            let best =
+                points.iter().enumerate().filter(|&(i, p)| p.label() == name && holds(i)).max_by(
+                    |(_, a), (_, b)| a.entropy.total_cmp(&b.entropy).then(b.lambda.total_cmp(&a.lambda)),
+                );
             (name, best)
         })
         .collect()
 }
 
 /// The CSV header of `frontier.csv`.
-pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini,miscalibration,protected_share";
+pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini,miscalibration,protected_share,ndcg_lo,ndcg_hi,entropy_lo,entropy_hi,ndcg_diff_lo,ndcg_diff_hi,ips_clicks,alpha_ndcg";
 
 /// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
 #[must_use]
 pub fn csv_row(label: &str, p: &Point) -> String {
     format!(
-        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{}",
+        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{:.6}",
         label,
         p.lambda,
         p.window.map_or_else(String::new, |w| w.to_string()),
@@ -161,6 +199,14 @@ pub fn csv_row(label: &str, p: &Point) -> String {
         p.gini,
         p.miscalibration.map_or_else(String::new, |x| format!("{x:.6}")),
         p.protected_share.map_or_else(String::new, |x| format!("{x:.6}")),
+        p.ndcg_lo,
+        p.ndcg_hi,
+        p.entropy_lo,
+        p.entropy_hi,
+        p.ndcg_diff_lo,
+        p.ndcg_diff_hi,
+        p.ips_clicks.map_or_else(String::new, |x| format!("{x:.6}")),
+        p.alpha_ndcg,
     )
 }
 

@@ -3,7 +3,8 @@
 //! x is mean category entropy (bits), y is nDCG@k. Each algorithm is one line through its lambdas
 //! in order, every point labelled with its lambda, and the line's name is written at its last
 //! point, so the plot reads without a legend. The relevance baseline is a separate black square
-//! labelled "relevance baseline"; every algorithm starts there, at lambda 0.
+//! labelled "relevance baseline"; every algorithm starts there, at lambda 0. Whiskers through
+//! each point span its 95 % bootstrap intervals: vertical for nDCG, horizontal for entropy.
 
 use plotters::prelude::*;
 
@@ -34,11 +35,11 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
         root.fill(&WHITE).map_err(|e| e.to_string())?;
         let (mut x0, mut x1, mut y0, mut y1) =
             (baseline.entropy, baseline.entropy, baseline.ndcg, baseline.ndcg);
-        for p in points {
-            x0 = x0.min(p.entropy);
-            x1 = x1.max(p.entropy);
-            y0 = y0.min(p.ndcg);
-            y1 = y1.max(p.ndcg);
+        for p in points.iter().chain(std::iter::once(baseline)) {
+            x0 = x0.min(p.entropy_lo.min(p.entropy));
+            x1 = x1.max(p.entropy_hi.max(p.entropy));
+            y0 = y0.min(p.ndcg_lo.min(p.ndcg));
+            y1 = y1.max(p.ndcg_hi.max(p.ndcg));
         }
         let pad = |lo: f64, hi: f64| {
             let m = ((hi - lo) * 0.08).max(0.01);
@@ -77,6 +78,7 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
             chart
                 .draw_series(line.iter().map(|p| Circle::new((p.entropy, p.ndcg), 4, colour.filled())))
                 .map_err(|e| e.to_string())?;
+            chart.draw_series(line.iter().flat_map(|p| whiskers(p, colour))).map_err(|e| e.to_string())?;
             // Lambda labels sit just above-right of their point; lambda 0 coincides with the
             // baseline for every algorithm, whose label says so once.
             chart
@@ -102,6 +104,7 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
                     .map_err(|e| e.to_string())?;
             }
         }
+        chart.draw_series(whiskers(baseline, BLACK)).map_err(|e| e.to_string())?;
         chart
             .draw_series(std::iter::once(Rectangle::new(
                 [
@@ -124,4 +127,17 @@ pub fn render(points: &[Point], baseline: &Point, k: usize) -> Result<String, St
         root.present().map_err(|e| e.to_string())?;
     }
     Ok(svg)
+}
+
+/// The 95 % interval whiskers of one point (NaN ends, from an empty bootstrap, draw nothing).
+fn whiskers(p: &Point, colour: RGBColor) -> Vec<PathElement<(f64, f64)>> {
+    let style = colour.mix(0.6).stroke_width(1);
+    let mut out = Vec::new();
+    if p.ndcg_lo.is_finite() && p.ndcg_hi.is_finite() {
+        out.push(PathElement::new(vec![(p.entropy, p.ndcg_lo), (p.entropy, p.ndcg_hi)], style));
+    }
+    if p.entropy_lo.is_finite() && p.entropy_hi.is_finite() {
+        out.push(PathElement::new(vec![(p.entropy_lo, p.ndcg), (p.entropy_hi, p.ndcg)], style));
+    }
+    out
 }
