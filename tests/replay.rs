@@ -5,6 +5,8 @@
 
 use std::process::Command;
 
+use serde_json::{json, Value};
+
 use medley::diversify::by_name;
 use medley::offline::replay::{evaluate_lines, Cell, GridOptions, Point};
 use medley::offline::sample::{write, SampleSpec};
@@ -251,5 +253,103 @@ fn profiles_and_groups_from_the_sample_drive_calibration_and_the_fairness_floor(
     for name in ["relevance", "mmr", "dpp", "calibrated"] {
         let share = evaluate(&corpus, by_name(name).unwrap(), 0.5, 10).1.protected_share.unwrap();
         assert!(share >= need, "{name}: protected share {share} under the floor's {need}");
+    }
+}
+
+/// Issue 18: the same lines as the exposure log (split over files, one zstd-compressed in two
+/// frames by the `zstandard` Python package, one cut short by a crash) give the corpus's numbers;
+/// shuffling the lines leaves the bootstrap intervals where they were (weights are keyed by
+/// request id, Chamandy et al. 2012), and a partial last line is skipped and reported.
+#[test]
+fn exposure_logs_zstd_and_shuffled_lines_replay_alike() {
+    let dir = std::env::temp_dir().join(format!("medley-replay-18-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(dir.join("log")).unwrap();
+    let spec = SampleSpec { requests: 90, candidates: 40, dim: 8, seed: 9, with_clicks: true, ..SampleSpec::default() };
+    let mut bytes = Vec::new();
+    write(&spec, &mut bytes).unwrap();
+    let text = String::from_utf8(bytes).unwrap();
+    let corpus = dir.join("corpus.jsonl");
+    std::fs::write(&corpus, &text).unwrap();
+    // As the exposure log writes them: the request (without clicks) and what was served; the
+    // clicks ride in the line here, as a join would put them.
+    let exposure: Vec<String> = text
+        .lines()
+        .map(|l| {
+            let mut v: Value = serde_json::from_str(l).unwrap();
+            let clicked = v.as_object_mut().unwrap().remove("clicked").unwrap();
+            let id = v["request_id"].clone();
+            let served: Vec<Value> = v["candidates"].as_array().unwrap()[..10].iter().map(|c| c["id"].clone()).collect();
+            format!(
+                "{}\n",
+                json!({"ts": "2026-12-01T00:00:00Z", "request": v, "served": {"request_id": id, "items": served}, "clicked": clicked})
+            )
+        })
+        .collect();
+    std::fs::write(dir.join("log/exposure-a-000001.jsonl"), exposure[..30].concat()).unwrap();
+    let zst_source = dir.join("middle.jsonl");
+    std::fs::write(&zst_source, exposure[30..60].concat()).unwrap();
+    // The last file ends in a line cut short.
+    let mut last = exposure[60..].concat();
+    last.push_str(&exposure[0][..100]);
+    std::fs::write(dir.join("log/exposure-c-000003.jsonl"), last).unwrap();
+    let python = std::env::var("MEDLEY_PYTHON").unwrap_or_else(|_| "python3".into());
+    let script = "import sys, zstandard\n\
+        data = open(sys.argv[1], 'rb').read()\n\
+        half = data.index(b'\\n', len(data) // 2) + 1\n\
+        c = zstandard.ZstdCompressor()\n\
+        open(sys.argv[2], 'wb').write(c.compress(data[:half]) + c.compress(data[half:]))\n";
+    let status = Command::new(&python)
+        .args(["-c", script])
+        .arg(&zst_source)
+        .arg(dir.join("log/exposure-b-000002.jsonl.zst"))
+        .status()
+        .expect("MEDLEY_PYTHON (or python3) with the zstandard package");
+    assert!(status.success(), "the zstandard package is needed: pip install zstandard");
+
+    let bin = env!("CARGO_BIN_EXE_medley");
+    let replay = |input: &std::path::Path, out: &str| {
+        let out_dir = dir.join(out);
+        let o = Command::new(bin)
+            .args(["replay", "--input"])
+            .arg(input)
+            .args(["--algorithms", "dpp,mmr", "--lambdas", "0,0.5", "--out"])
+            .arg(&out_dir)
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        (String::from_utf8(o.stdout).unwrap(), std::fs::read_to_string(out_dir.join("frontier.csv")).unwrap())
+    };
+    let (plain_report, plain_csv) = replay(&corpus, "plain");
+    let (log_report, log_csv) = replay(&dir.join("log"), "log");
+    assert!(log_report.contains("90 slates"), "{log_report}");
+    assert!(log_report.contains("skipped a partial last line at") && log_report.contains("exposure-c-000003.jsonl:31"), "{log_report}");
+    assert!(!plain_report.contains("partial"), "{plain_report}");
+    // Every column but ips_clicks (the corpus has no served slate) agrees to the printed digit.
+    let header: Vec<&str> = plain_csv.lines().next().unwrap().split(',').collect();
+    let ips = header.iter().position(|h| *h == "ips_clicks").unwrap();
+    for (a, b) in plain_csv.lines().zip(log_csv.lines()).skip(1) {
+        let (a, b): (Vec<&str>, Vec<&str>) = (a.split(',').collect(), b.split(',').collect());
+        for (j, name) in header.iter().enumerate() {
+            if j != ips {
+                assert_eq!(a[j], b[j], "{name}");
+            }
+        }
+        assert!(a[ips].is_empty() && !b[ips].is_empty());
+    }
+
+    // Shuffled (reversed, and the halves swapped): the same intervals to 1e-9.
+    let mut lines: Vec<&str> = text.lines().collect();
+    lines.reverse();
+    lines.rotate_left(45);
+    let shuffled = dir.join("shuffled.jsonl");
+    std::fs::write(&shuffled, lines.iter().map(|l| format!("{l}\n")).collect::<String>()).unwrap();
+    let (_, shuffled_csv) = replay(&shuffled, "shuffled");
+    for (a, b) in plain_csv.lines().zip(shuffled_csv.lines()).skip(1) {
+        for (x, y) in a.split(',').zip(b.split(',')).skip(3) {
+            if let (Ok(x), Ok(y)) = (x.parse::<f64>(), y.parse::<f64>()) {
+                assert!((x - y).abs() < 1e-6, "{a}\n{b}");
+            }
+        }
     }
 }

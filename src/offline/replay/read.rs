@@ -1,6 +1,6 @@
 //! Reading logged traffic as a stream of validated slates, a bounded chunk at a time.
 //!
-//! Two line formats, told apart by their first key:
+//! Two line formats, told apart by a `"served"` key:
 //! - the corpus format: a re-rank request plus `"clicked": [ids]` (what `medley sample
 //!   --with-clicks` writes);
 //! - the exposure log (`{"ts": ..., "request": {...}, "served": {...}}`, what `medley serve`
@@ -366,46 +366,51 @@ enum Parsed {
     Invalid(String),
 }
 
-/// Whether a line is an exposure-log record (its first key is `"ts"`, as the log writes it).
-fn is_exposure(line: &[u8]) -> bool {
-    let t = line.trim_ascii_start();
-    t.strip_prefix(b"{").is_some_and(|rest| rest.trim_ascii_start().starts_with(b"\"ts\""))
+/// Whether a line may be an exposure-log record: it names a `"served"` key somewhere (the corpus
+/// format has none; a corpus line that merely holds the word is decoded as corpus after the
+/// exposure decode fails).
+fn may_be_exposure(line: &[u8]) -> bool {
+    line.windows(8).any(|w| w == b"\"served\"")
+}
+
+/// A line as an exposure record: the request, its clicks and the served ids.
+fn decode_exposure(bytes: &[u8]) -> Result<(RerankRequest, Vec<String>, Vec<String>), String> {
+    let ExposureLine { mut request, served, clicked } = wire::decode_json(bytes).map_err(|e| e.to_string())?;
+    if wire::midpoint_seen() {
+        #[derive(Deserialize)]
+        struct Outer<'a> {
+            #[serde(borrow)]
+            request: &'a serde_json::value::RawValue,
+        }
+        if let Ok(outer) = serde_json::from_slice::<Outer<'_>>(bytes) {
+            wire::exact_embeddings(&mut request.candidates, outer.request.get().as_bytes());
+        }
+    }
+    if request.request_id.is_none() {
+        request.request_id.clone_from(&served.request_id);
+    }
+    Ok((request, clicked, served.items))
 }
 
 /// One line into a validated slate, or why it is skipped.
 fn parse_line(engine: &Engine, clicks: Option<&Clicks>, line: &RawLine) -> Parsed {
     let bytes = &line.bytes;
     let _ = wire::midpoint_seen();
-    let (mut request, mut clicked, served) = if is_exposure(bytes) {
-        let logged: ExposureLine = match wire::decode_json(bytes) {
-            Ok(l) => l,
-            Err(e) => return Parsed::Invalid(e.to_string()),
-        };
-        let ExposureLine { mut request, served, clicked } = logged;
-        if wire::midpoint_seen() {
-            #[derive(Deserialize)]
-            struct Outer<'a> {
-                #[serde(borrow)]
-                request: &'a serde_json::value::RawValue,
+    let exposure = if may_be_exposure(bytes) { decode_exposure(bytes).ok() } else { None };
+    let (mut request, mut clicked, served) = match exposure {
+        Some((request, clicked, served)) => (request, clicked, Some(served)),
+        None => {
+            let _ = wire::midpoint_seen();
+            let logged: CorpusLine = match wire::decode_json(bytes) {
+                Ok(l) => l,
+                Err(e) => return Parsed::Invalid(e.to_string()),
+            };
+            let CorpusLine { mut request, clicked } = logged;
+            if wire::midpoint_seen() {
+                wire::exact_embeddings(&mut request.candidates, bytes);
             }
-            if let Ok(outer) = serde_json::from_slice::<Outer<'_>>(bytes) {
-                wire::exact_embeddings(&mut request.candidates, outer.request.get().as_bytes());
-            }
+            (request, clicked, None)
         }
-        if request.request_id.is_none() {
-            request.request_id.clone_from(&served.request_id);
-        }
-        (request, clicked, Some(served.items))
-    } else {
-        let logged: CorpusLine = match wire::decode_json(bytes) {
-            Ok(l) => l,
-            Err(e) => return Parsed::Invalid(e.to_string()),
-        };
-        let CorpusLine { mut request, clicked } = logged;
-        if wire::midpoint_seen() {
-            wire::exact_embeddings(&mut request.candidates, bytes);
-        }
-        (request, clicked, None)
     };
     if let (Some(clicks), Some(id)) = (clicks, request.request_id.as_deref()) {
         if let Some(joined) = clicks.by_request.get(id) {
