@@ -62,7 +62,8 @@ fn clicks_on(served: &[String], taste: &HashSet<String>) -> Vec<String> {
 
 /// A line's candidate ids, joined: the key a logged request is matched to its sample line by.
 fn ids_of(request: &Value) -> String {
-    let ids: Vec<&str> = request["candidates"].as_array().unwrap().iter().map(|c| c["id"].as_str().unwrap()).collect();
+    let ids: Vec<&str> =
+        request["candidates"].as_array().unwrap().iter().map(|c| c["id"].as_str().unwrap()).collect();
     ids.join(",")
 }
 
@@ -87,7 +88,8 @@ fn served_logged_clicked_replayed_and_picked() {
         "[exposure_log]\ndir = \"exposure\"\nmax_file_bytes = 65536\n[slices.default]\nalgorithm = \"dpp\"\nlambda = 0.3\nk = 10\n",
     )
     .unwrap();
-    let (mut child, public, admin, grpc) = spawn_server_with_grpc(&["--config", config.to_str().unwrap()], &[]);
+    let (mut child, public, admin, grpc) =
+        spawn_server_with_grpc(&["--config", config.to_str().unwrap()], &[]);
     let _guard = KillOnDrop(child.id());
 
     // Requests as callers send them: without "clicked"; every third without a request id (the
@@ -97,7 +99,8 @@ fn served_logged_clicked_replayed_and_picked() {
     for (i, line) in lines.iter().enumerate() {
         let mut r = line.clone();
         let clicked = r.as_object_mut().unwrap().remove("clicked").unwrap();
-        let set: HashSet<String> = clicked.as_array().unwrap().iter().map(|c| c.as_str().unwrap().into()).collect();
+        let set: HashSet<String> =
+            clicked.as_array().unwrap().iter().map(|c| c.as_str().unwrap().into()).collect();
         if i % 3 == 0 {
             r.as_object_mut().unwrap().remove("request_id");
         }
@@ -149,7 +152,8 @@ fn served_logged_clicked_replayed_and_picked() {
                 assigned += 1;
             }
         }
-        let metrics = client.get(format!("http://{admin}/metrics")).send().await.unwrap().text().await.unwrap();
+        let metrics =
+            client.get(format!("http://{admin}/metrics")).send().await.unwrap().text().await.unwrap();
         assert!(metrics.contains("medley_exposure_log_records_total"), "{metrics}");
         assert!(metrics.contains("medley_exposure_log_dropped_total 0"), "{metrics}");
         assigned
@@ -184,7 +188,9 @@ fn served_logged_clicked_replayed_and_picked() {
     let mut with_embeddings = 0;
     for rec in &records {
         let served = &rec["served"];
-        for key in ["request_id", "slice", "arm", "algorithm", "lambda", "k", "config_generation", "config_digest"] {
+        for key in
+            ["request_id", "slice", "arm", "algorithm", "lambda", "k", "config_generation", "config_digest"]
+        {
             assert!(!served[key].is_null(), "served.{key} in {served}");
         }
         assert_eq!(served["items"].as_array().unwrap().len(), 10);
@@ -230,22 +236,30 @@ fn served_logged_clicked_replayed_and_picked() {
     assert!(out.status.success(), "{report}\n{}", String::from_utf8_lossy(&out.stderr));
     let skipped = REQUESTS - clicked_slates;
     assert!(
-        report.contains(&format!("{clicked_slates} slates")) && report.contains(&format!("{skipped} of {REQUESTS} lines skipped without clicks")),
+        report.contains(&format!("{clicked_slates} slates"))
+            && report.contains(&format!("{skipped} of {REQUESTS} lines skipped without clicks")),
         "{report}"
     );
     let csv = std::fs::read_to_string(out_dir.join("frontier.csv")).unwrap();
     let header: Vec<&str> = csv.lines().next().unwrap().split(',').collect();
-    let col = |name: &str| header.iter().position(|h| *h == name).unwrap_or_else(|| panic!("{name} in {header:?}"));
-    let served_row: Vec<&str> = csv.lines().find(|r| r.starts_with("dpp,0.3,,")).unwrap().split(',').collect();
+    let col =
+        |name: &str| header.iter().position(|h| *h == name).unwrap_or_else(|| panic!("{name} in {header:?}"));
+    let served_row: Vec<&str> =
+        csv.lines().find(|r| r.starts_with("dpp,0.3,,")).unwrap().split(',').collect();
     let num = |row: &[&str], name: &str| row[col(name)].parse::<f64>().unwrap();
     // The served policy replayed: every click is on its slate, in its top 10.
     let mean_clicks = clicks_total as f64 / clicked_slates as f64;
     assert!((num(&served_row, "ips_clicks") - mean_clicks).abs() < 1e-6, "{served_row:?} vs {mean_clicks}");
     assert!((num(&served_row, "recall_reachable") - 1.0).abs() < 1e-9, "{served_row:?}");
-    for name in ["ndcg_lo", "ndcg_hi", "entropy_lo", "entropy_hi", "ndcg_diff_lo", "ndcg_diff_hi", "alpha_ndcg"] {
+    for name in
+        ["ndcg_lo", "ndcg_hi", "entropy_lo", "entropy_hi", "ndcg_diff_lo", "ndcg_diff_hi", "alpha_ndcg"]
+    {
         assert!(num(&served_row, name).is_finite(), "{name}");
     }
-    assert!(num(&served_row, "ndcg_lo") <= num(&served_row, "ndcg") && num(&served_row, "ndcg") <= num(&served_row, "ndcg_hi"));
+    assert!(
+        num(&served_row, "ndcg_lo") <= num(&served_row, "ndcg")
+            && num(&served_row, "ndcg") <= num(&served_row, "ndcg_hi")
+    );
     assert!(report.contains("ips_clicks"), "{report}");
 
     // The pick's slice, loaded as a config.
@@ -254,5 +268,10 @@ fn served_logged_clicked_replayed_and_picked() {
     let picked = dir.join("picked.toml");
     std::fs::write(&picked, format!("[slices.default]{snippet}")).unwrap();
     let check = Command::new(BIN).arg("check-config").arg(&picked).output().unwrap();
-    assert!(check.status.success(), "{}\n{}", String::from_utf8_lossy(&check.stderr), std::fs::read_to_string(&picked).unwrap());
+    assert!(
+        check.status.success(),
+        "{}\n{}",
+        String::from_utf8_lossy(&check.stderr),
+        std::fs::read_to_string(&picked).unwrap()
+    );
 }

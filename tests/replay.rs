@@ -265,7 +265,14 @@ fn exposure_logs_zstd_and_shuffled_lines_replay_alike() {
     let dir = std::env::temp_dir().join(format!("medley-replay-18-{}", std::process::id()));
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(dir.join("log")).unwrap();
-    let spec = SampleSpec { requests: 90, candidates: 40, dim: 8, seed: 9, with_clicks: true, ..SampleSpec::default() };
+    let spec = SampleSpec {
+        requests: 90,
+        candidates: 40,
+        dim: 8,
+        seed: 9,
+        with_clicks: true,
+        ..SampleSpec::default()
+    };
     let mut bytes = Vec::new();
     write(&spec, &mut bytes).unwrap();
     let text = String::from_utf8(bytes).unwrap();
@@ -323,7 +330,11 @@ fn exposure_logs_zstd_and_shuffled_lines_replay_alike() {
     let (plain_report, plain_csv) = replay(&corpus, "plain");
     let (log_report, log_csv) = replay(&dir.join("log"), "log");
     assert!(log_report.contains("90 slates"), "{log_report}");
-    assert!(log_report.contains("skipped a partial last line at") && log_report.contains("exposure-c-000003.jsonl:31"), "{log_report}");
+    assert!(
+        log_report.contains("skipped a partial last line at")
+            && log_report.contains("exposure-c-000003.jsonl:31"),
+        "{log_report}"
+    );
     assert!(!plain_report.contains("partial"), "{plain_report}");
     // Every column but ips_clicks (the corpus has no served slate) agrees to the printed digit.
     let header: Vec<&str> = plain_csv.lines().next().unwrap().split(',').collect();

@@ -204,7 +204,8 @@ pub struct WireFairness {
 /// The response to one request.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct RerankResponse {
-    /// The request's `request_id`, when it had one.
+    /// The request's `request_id`; when it had none and the exposure log recorded it, the
+    /// UUID v7 the log assigned.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub request_id: Option<String>,
     /// Slice that served the request.

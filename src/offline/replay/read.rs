@@ -375,7 +375,8 @@ fn may_be_exposure(line: &[u8]) -> bool {
 
 /// A line as an exposure record: the request, its clicks and the served ids.
 fn decode_exposure(bytes: &[u8]) -> Result<(RerankRequest, Vec<String>, Vec<String>), String> {
-    let ExposureLine { mut request, served, clicked } = wire::decode_json(bytes).map_err(|e| e.to_string())?;
+    let ExposureLine { mut request, served, clicked } =
+        wire::decode_json(bytes).map_err(|e| e.to_string())?;
     if wire::midpoint_seen() {
         #[derive(Deserialize)]
         struct Outer<'a> {

@@ -27,6 +27,17 @@ pub fn describe(config: &Config) -> String {
         s.body_timeout.as_millis(),
         s.max_connections
     );
+    if let Some(log) = &config.exposure_log {
+        let _ = writeln!(
+            out,
+            "exposure log: {} (sample_rate {}, files up to {} bytes, queue {} records / {} bytes)",
+            log.dir.display(),
+            log.sample_rate,
+            log.max_file_bytes,
+            log.queue,
+            log.queue_bytes
+        );
+    }
     for slice in config.slices.values() {
         let _ = writeln!(out, "slice {}: locked={}", slice.name, slice.locked);
         for arm in &slice.arms {
