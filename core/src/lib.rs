@@ -13,6 +13,8 @@
 //! - [`evaluate`]: the replay metrics: nDCG@k and recall@k, standard and candidate-restricted,
 //!   α-nDCG@k, and position-debiased clicks (IPS).
 //! - [`bootstrap`]: the streaming Poisson bootstrap behind the replay's confidence intervals.
+//! - [`replay`]: the replay grid's accumulators (per-cell sums, replicate sums, exposure) and
+//!   the means and intervals read off them.
 //! - [`fairness`]: the ranked group fairness floor (FA*IR's `m(t)` table) every diversifier
 //!   respects when a slate carries one.
 //! - [`fuzz`]: the invariant checks the `diversify` fuzz target drives.
@@ -57,6 +59,7 @@ pub mod fairness;
 pub mod fuzz;
 pub mod measures;
 pub mod model;
+pub mod replay;
 
 pub use diversify::{Diversifier, KernelError, Workspace};
 pub use model::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, Selection, ValidationError};

@@ -1,59 +1,8 @@
-//! The frontier's cells and what is read off them: [`Point`] (one cell's means), the lambda
-//! grid and `--pick` rule parsers, the pick itself, and the rows of `frontier.csv`. Shared by the
-//! evaluation that fills cells, the report and the plot.
+//! What is read off the grid's cells: the lambda grid and `--pick` rule parsers, the pick
+//! itself, and the rows of `frontier.csv`. Shared by the report and the plot; a cell's means
+//! ([`Point`]) come from [`medley_core::replay`].
 
-/// One cell of the grid.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Point {
-    /// Algorithm.
-    pub algorithm: &'static str,
-    /// The sliding window of `dpp` and `ssd`, when the cell has one.
-    pub window: Option<usize>,
-    /// Lambda.
-    pub lambda: f64,
-    /// Mean recall@k over all logged clicks.
-    pub recall: f64,
-    /// Mean nDCG@k over all logged clicks (Järvelin & Kekäläinen 2002).
-    pub ndcg: f64,
-    /// Mean recall@k over the clicked candidates only.
-    pub recall_reachable: f64,
-    /// Mean nDCG@k over the clicked candidates only.
-    pub ndcg_reachable: f64,
-    /// Mean relevance retained.
-    pub relevance_retained: f64,
-    /// Mean category entropy, bits.
-    pub entropy: f64,
-    /// Mean intra-list distance.
-    pub ild: f64,
-    /// Mean distinct categories.
-    pub distinct: f64,
-    /// Distinct items exposed ÷ distinct items offered.
-    pub coverage: f64,
-    /// Gini coefficient of item exposure over offered items.
-    pub gini: f64,
-    /// Mean miscalibration over the slates whose line carried a profile; `None` without any.
-    pub miscalibration: Option<f64>,
-    /// Mean protected share over the slates whose line carried a fairness floor; `None` without
-    /// any.
-    pub protected_share: Option<f64>,
-    /// Mean position-debiased clicks@k over the slates whose line logged the served slate;
-    /// `None` without any.
-    pub ips_clicks: Option<f64>,
-    /// Mean α-nDCG@k (α = 0.5, categories as subtopics).
-    pub alpha_ndcg: f64,
-    /// 95 % bootstrap interval of the mean nDCG@k.
-    pub ndcg_lo: f64,
-    /// Upper end.
-    pub ndcg_hi: f64,
-    /// 95 % bootstrap interval of the mean entropy.
-    pub entropy_lo: f64,
-    /// Upper end.
-    pub entropy_hi: f64,
-    /// Paired 95 % bootstrap interval of the difference of mean nDCG@k from the baseline's.
-    pub ndcg_diff_lo: f64,
-    /// Upper end.
-    pub ndcg_diff_hi: f64,
-}
+pub use medley_core::replay::Point;
 
 /// Parses `0,0.1,0.5` or `start:end:step` (inclusive of `end` within rounding).
 ///
@@ -115,7 +64,7 @@ impl PickRule {
     /// The per-slate column the rule constrains.
     #[must_use]
     pub fn column(&self) -> usize {
-        use super::evaluate::col;
+        use medley_core::replay::col;
         match self.metric {
             "recall" => col::RECALL,
             "ndcg_reachable" => col::NDCG_REACHABLE,
@@ -123,30 +72,6 @@ impl PickRule {
             "relevance_retained" => col::RETAINED,
             "alpha_ndcg" => col::ALPHA_NDCG,
             _ => col::NDCG,
-        }
-    }
-}
-
-impl Point {
-    /// The cell's algorithm as the report names it: `dpp`, or `dpp w=10` with a window.
-    #[must_use]
-    pub fn label(&self) -> String {
-        match self.window {
-            None => self.algorithm.to_owned(),
-            Some(w) => format!("{} w={w}", self.algorithm),
-        }
-    }
-
-    /// The value of a named accuracy metric.
-    #[must_use]
-    pub fn metric(&self, name: &str) -> f64 {
-        match name {
-            "recall" => self.recall,
-            "ndcg_reachable" => self.ndcg_reachable,
-            "recall_reachable" => self.recall_reachable,
-            "relevance_retained" => self.relevance_retained,
-            "alpha_ndcg" => self.alpha_ndcg,
-            _ => self.ndcg,
         }
     }
 }

@@ -27,8 +27,9 @@ mod frontier;
 pub mod plot;
 mod read;
 
-pub use evaluate::{col, Cell, Grid, GridOptions};
+pub use evaluate::add_chunk;
 pub use frontier::{csv_row, parse_lambdas, parse_pick, pick, PickRule, Point, CSV_HEADER};
+pub use medley_core::replay::{col, Cell, Grid, GridOptions, LoggedSlate};
 pub use read::{list_inputs, Clicks, ReadStats, Reader, Slate, CHUNK_BYTES, CHUNK_LINES};
 
 use std::path::Path;
@@ -97,7 +98,7 @@ pub fn pass(
                 );
             }
         }
-        grid.add_chunk(&chunk, reader.stats.items).map_err(anyhow::Error::msg)?;
+        add_chunk(grid, &chunk, reader.stats.items).map_err(anyhow::Error::msg)?;
         bar.set_position(reader.bytes_read.load(Ordering::Relaxed));
         let rate = reader.stats.slates as f64 / started.elapsed().as_secs_f64().max(1e-9);
         bar.set_message(format!("{} slates, {rate:.0} slates/s", reader.stats.slates));
@@ -110,7 +111,7 @@ pub fn pass(
 /// first) and what reading counted. For tests and embedding; `medley replay` streams files.
 ///
 /// # Errors
-/// As [`Grid::add_chunk`], or I/O errors.
+/// As [`add_chunk`], or I/O errors.
 pub fn evaluate_lines(
     engine: &Engine,
     lines: &[u8],
@@ -120,7 +121,7 @@ pub fn evaluate_lines(
     let mut grid = Grid::new(cells, opts).map_err(anyhow::Error::msg)?;
     let mut reader = Reader::over(engine, Box::new(std::io::Cursor::new(lines.to_vec())), "<lines>", None);
     while let Some(chunk) = reader.next_chunk()? {
-        grid.add_chunk(&chunk, reader.stats.items).map_err(anyhow::Error::msg)?;
+        add_chunk(&mut grid, &chunk, reader.stats.items).map_err(anyhow::Error::msg)?;
     }
     Ok((grid.points(), reader.stats))
 }

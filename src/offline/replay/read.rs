@@ -27,7 +27,6 @@ use serde::Deserialize;
 use crate::api::wire::{self, RerankRequest};
 use crate::serve::engine::Engine;
 use medley_core::bootstrap::{key_of_id, key_of_line};
-use medley_core::model::RerankInput;
 
 /// Most lines validated together.
 pub const CHUNK_LINES: usize = 2048;
@@ -61,25 +60,7 @@ struct ServedLine {
     items: Vec<String>,
 }
 
-/// A validated logged slate.
-#[derive(Debug)]
-pub struct Slate {
-    pub(super) input: RerankInput,
-    /// Whether each candidate was clicked.
-    pub(super) clicked: Vec<bool>,
-    /// Distinct ids the line logs as clicked, among the candidates or not: the relevant set of
-    /// the standard nDCG and recall.
-    pub(super) relevant: usize,
-    /// Each candidate's 1-based rank in the served slate (0: not shown), when the line logged
-    /// the served slate.
-    pub(super) served_rank: Option<Vec<u32>>,
-    /// The bootstrap key: a hash of the request id, else of the line number.
-    pub(super) key: u64,
-    /// Global item number of each candidate (for coverage and exposure).
-    pub(super) item: Vec<u32>,
-    /// Line number, counted over all input files.
-    pub(super) line: u64,
-}
+pub use medley_core::replay::LoggedSlate as Slate;
 
 /// Clicks by request id, from `--clicks`.
 #[derive(Debug, Default)]
