@@ -3,8 +3,8 @@
 //! chosen on evidence.
 //!
 //! Input is the corpus format or the exposure log that `medley serve` writes, as files or a
-//! directory, plain or zstd ([`read`]), with clicks inline or joined from `--clicks`. One
-//! streaming pass evaluates every cell of the grid on each chunk of slates ([`evaluate`]), so
+//! directory, plain or zstd ([`Reader`]), with clicks inline or joined from `--clicks`. One
+//! streaming pass evaluates every cell of the grid on each chunk of slates ([`add_chunk`] into a [`Grid`]), so
 //! memory does not grow with the number of slates. Per cell it reports:
 //! - accuracy: recall@k and nDCG@k (binary gains, log2 discount) in their textbook form, whose
 //!   ideal and denominator count every item the line logs as clicked, offered or not; the same
