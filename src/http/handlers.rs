@@ -164,7 +164,7 @@ pub(crate) async fn serve_one(
 }
 
 /// What the exposure log keeps of a request while it is served: the body (a reference-counted
-/// view, not a copy) or the re-encoded gRPC request, and the config digest.
+/// view, not a copy) or a copy of the decoded gRPC request, and the config digest.
 struct ExposureCapture {
     log: Arc<ExposureLog>,
     rate: f64,
@@ -175,8 +175,9 @@ struct ExposureCapture {
 enum CapturedRequest {
     /// A JSON body; whether it is sampled is known once its `unit_id` is decoded.
     Json(Bytes),
-    /// A decoded request already found to be in the sample, re-encoded as JSON.
-    Sampled(Vec<u8>),
+    /// A decoded request already found to be in the sample (a copy: the original is consumed by
+    /// validation); the writer thread encodes it.
+    Sampled(Box<RerankRequest>),
 }
 
 impl ExposureCapture {
@@ -193,7 +194,7 @@ impl ExposureCapture {
                 if !exposure::sampled(rate, request.unit_id.as_deref()) {
                     return None;
                 }
-                CapturedRequest::Sampled(serde_json::to_vec(request).ok()?)
+                CapturedRequest::Sampled(request.clone())
             }
         };
         Some(Self { log: log.clone(), rate, digest: engine.digest().to_owned(), request })
@@ -208,7 +209,7 @@ impl ExposureCapture {
                 }
                 LoggedRequest::Json(bytes)
             }
-            CapturedRequest::Sampled(encoded) => LoggedRequest::Encoded(encoded),
+            CapturedRequest::Sampled(request) => LoggedRequest::Decoded(request),
         };
         let r = &mut served.response;
         let request_id = r.request_id.get_or_insert_with(exposure::new_request_id).clone();

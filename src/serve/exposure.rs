@@ -4,7 +4,8 @@
 //! A line is `{"ts": RFC 3339 UTC, "request": <the request object as received>, "served":
 //! {request_id, slice, arm, algorithm, lambda, k, config_generation, config_digest, items,
 //! catalog_version?}}`. The request is the body's own bytes (JSON front ends) or the decoded
-//! request re-encoded (gRPC); line breaks in a body, legal only as JSON whitespace, become spaces.
+//! request (gRPC), encoded as JSON by the writer thread; line breaks in a body, legal only as
+//! JSON whitespace, become spaces.
 //!
 //! The request path only decides whether a request is sampled and hands a record to
 //! [`ExposureLog::submit`], which never blocks: the queue is a bounded channel (in records and
@@ -38,15 +39,39 @@ use crate::serve::metrics::Metrics;
 pub enum LoggedRequest {
     /// A JSON body (or stream line) as received.
     Json(Bytes),
-    /// A request re-encoded as JSON (gRPC).
-    Encoded(Vec<u8>),
+    /// A decoded request (gRPC), encoded as JSON by the writer thread, off the request path.
+    Decoded(Box<crate::api::wire::RerankRequest>),
 }
 
 impl LoggedRequest {
-    fn bytes(&self) -> &[u8] {
+    /// Bytes it holds, roughly (a decoded embedding value counts as its JSON text would).
+    fn weight(&self) -> usize {
         match self {
-            Self::Json(b) => b,
-            Self::Encoded(v) => v,
+            Self::Json(b) => b.len(),
+            Self::Decoded(r) => r
+                .candidates
+                .iter()
+                .map(|c| 64 + c.id.len() + c.embedding.as_ref().map_or(0, |e| 12 * e.len()))
+                .sum(),
+        }
+    }
+
+    /// Appends the request object's JSON text to `out`, on one line.
+    fn write_json(&self, out: &mut Vec<u8>) {
+        match self {
+            Self::Json(b) => {
+                // JSON allows raw line breaks only as whitespace between tokens (inside strings
+                // they are escaped), so turning them into spaces keeps the document and makes it
+                // one line.
+                let body = b.trim_ascii();
+                out.extend(body.iter().map(|&b| if b == b'\n' || b == b'\r' { b' ' } else { b }));
+            }
+            // serde_json writes no raw line breaks; a request that decoded serialises.
+            Self::Decoded(r) => {
+                if serde_json::to_writer(&mut *out, r).is_err() {
+                    out.extend_from_slice(b"null");
+                }
+            }
         }
     }
 }
@@ -91,7 +116,7 @@ pub struct Record {
 impl Record {
     /// Bytes this record holds while queued (its request and ids, roughly).
     fn weight(&self) -> usize {
-        self.request.bytes().len() + self.served.items.iter().map(|i| i.len() + 24).sum::<usize>() + 256
+        self.request.weight() + self.served.items.iter().map(|i| i.len() + 24).sum::<usize>() + 256
     }
 
     /// The JSON line, newline included.
@@ -100,10 +125,7 @@ impl Record {
         out.extend_from_slice(b"{\"ts\":\"");
         out.extend_from_slice(self.ts.to_rfc3339_opts(chrono::SecondsFormat::Micros, true).as_bytes());
         out.extend_from_slice(b"\",\"request\":");
-        // JSON allows raw line breaks only as whitespace between tokens (inside strings they are
-        // escaped), so turning them into spaces keeps the document and makes it one line.
-        let body = self.request.bytes().trim_ascii();
-        out.extend(body.iter().map(|&b| if b == b'\n' || b == b'\r' { b' ' } else { b }));
+        self.request.write_json(out);
         out.extend_from_slice(b",\"served\":");
         // Strings, integers and a finite f64: serialising cannot fail.
         let _ = serde_json::to_writer(&mut *out, &self.served);
@@ -391,6 +413,40 @@ mod tests {
         assert_eq!(v["served"]["items"][1], "b\"");
         assert_eq!(v["served"]["request_id"], "r1");
         assert!(v["served"].get("catalog_version").is_none());
+    }
+
+    /// A decoded (gRPC) request is written as the JSON body that decodes back to it, f32
+    /// embeddings and f64 scores bit for bit.
+    #[test]
+    fn a_decoded_request_is_logged_as_json_that_decodes_to_it() {
+        let request = crate::api::wire::RerankRequest {
+            request_id: Some("g1".into()),
+            unit_id: Some("u".into()),
+            k: Some(2),
+            candidates: vec![
+                crate::api::wire::WireCandidate {
+                    id: "a".into(),
+                    score: 0.1 + 0.2,
+                    category: Some("x".into()),
+                    embedding: Some(vec![0.1, -3.4e-7, 1.0 / 3.0]),
+                    ..Default::default()
+                },
+                crate::api::wire::WireCandidate { id: "b".into(), score: -1e300, ..Default::default() },
+            ],
+            ..Default::default()
+        };
+        let record = Record {
+            ts: chrono::Utc::now(),
+            request: LoggedRequest::Decoded(Box::new(request.clone())),
+            served: served("g1"),
+        };
+        let mut line = Vec::new();
+        record.encode(&mut line);
+        let v: serde_json::Value = serde_json::from_slice(&line).unwrap();
+        let text = serde_json::to_vec(&v["request"]).unwrap();
+        let back = crate::api::wire::decode_request(&text).unwrap();
+        assert_eq!(back, request);
+        assert!(v["request"].get("slice").is_none(), "absent fields stay absent");
     }
 
     #[test]
