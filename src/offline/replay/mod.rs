@@ -218,7 +218,7 @@ pub fn run(engine: &Engine, input: &Path, clicks: Option<&Clicks>, opts: &Option
     Ok(report)
 }
 
-/// The table: one row per cell, intervals beside their means.
+/// The table: one row per cell, interval ends beside their means (named as the CSV names them).
 fn table(baseline: &Point, points: &[Point]) -> String {
     use std::fmt::Write as _;
     let rows: Vec<(String, &Point)> = std::iter::once(("baseline".to_owned(), baseline))
@@ -232,17 +232,20 @@ fn table(baseline: &Point, points: &[Point]) -> String {
     let mut report = String::new();
     let _ = write!(
         report,
-        "{:<12} {:>6} {:>9} {:>8} {:>17} {:>16} {:>14} {:>9} {:>8} {:>15} {:>6} {:>8} {:>8} {:>6} {:>10}",
+        "{:<12} {:>6} {:>9} {:>8} {:>8} {:>8} {:>12} {:>12} {:>14} {:>9} {:>8} {:>10} {:>10} {:>6} {:>8} {:>8} {:>6} {:>10}",
         "algorithm",
         "lambda",
         "recall@k",
         "nDCG@k",
-        "nDCG 95% CI",
-        "vs baseline",
+        "ndcg_lo",
+        "ndcg_hi",
+        "ndcg_diff_lo",
+        "ndcg_diff_hi",
         "ndcg_reachable",
         "retained",
         "entropy",
-        "entropy 95% CI",
+        "entropy_lo",
+        "entropy_hi",
         "ILD",
         "distinct",
         "coverage",
@@ -263,17 +266,20 @@ fn table(baseline: &Point, points: &[Point]) -> String {
     for (label, p) in &rows {
         let _ = write!(
             report,
-            "{:<12} {:>6.2} {:>9.4} {:>8.4} {:>17} {:>16} {:>14.4} {:>9.4} {:>8.3} {:>15} {:>6.3} {:>8.2} {:>8.4} {:>6.3} {:>10.4}",
+            "{:<12} {:>6.2} {:>9.4} {:>8.4} {:>8.4} {:>8.4} {:>+12.4} {:>+12.4} {:>14.4} {:>9.4} {:>8.3} {:>10.3} {:>10.3} {:>6.3} {:>8.2} {:>8.4} {:>6.3} {:>10.4}",
             label,
             p.lambda,
             p.recall,
             p.ndcg,
-            format!("[{:.4}, {:.4}]", p.ndcg_lo, p.ndcg_hi),
-            format!("[{:+.4}, {:+.4}]", p.ndcg_diff_lo, p.ndcg_diff_hi),
+            p.ndcg_lo,
+            p.ndcg_hi,
+            p.ndcg_diff_lo,
+            p.ndcg_diff_hi,
             p.ndcg_reachable,
             p.relevance_retained,
             p.entropy,
-            format!("[{:.3}, {:.3}]", p.entropy_lo, p.entropy_hi),
+            p.entropy_lo,
+            p.entropy_hi,
             p.ild,
             p.distinct,
             p.coverage,
