@@ -64,7 +64,12 @@ impl LoggedRequest {
                 // they are escaped), so turning them into spaces keeps the document and makes it
                 // one line.
                 let body = b.trim_ascii();
-                out.extend(body.iter().map(|&b| if b == b'\n' || b == b'\r' { b' ' } else { b }));
+                if body.contains(&b'\n') || body.contains(&b'\r') {
+                    out.extend(body.iter().map(|&b| if b == b'\n' || b == b'\r' { b' ' } else { b }));
+                } else {
+                    // The usual case (a compact body): one copy at memcpy speed.
+                    out.extend_from_slice(body);
+                }
             }
             // serde_json writes no raw line breaks; a request that decoded serialises.
             Self::Decoded(r) => {
