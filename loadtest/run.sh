@@ -11,7 +11,8 @@
 #                                      # max_in_flight = 64): shed rate, p99 of the accepted
 #                                      # requests, and the half-rate step again right after
 #   N=500 D=64 K=50 ALGO=mmr loadtest/run.sh --duration 5
-#   EXPOSURE=1 loadtest/run.sh         # exposure log on at this sample rate (0, the default: off)
+#   EXPOSURE=1 loadtest/run.sh         # exposure log on at this sample rate (0, the default: off);
+#                                      # EXPOSURE_COMPRESS=1 writes it zstd-compressed
 #
 # Defaults: N=200 candidates, D=64 dims, K=20, ALGO=dpp, LAMBDA=0.5; embeddings sent as
 # embedding_b64; CONNS=32 connections. Latencies at fixed rates are corrected for coordinated
@@ -29,12 +30,12 @@ while [ $# -gt 0 ]; do
     --duration) duration="$2"; shift 2 ;;
     --soak) soak="$2"; shift 2 ;;
     --overload) overload=1; shift ;;
-    -h|--help) sed -n '2,20p' "$0"; exit 0 ;;
+    -h|--help) sed -n '2,21p' "$0"; exit 0 ;;
     *) echo "unknown argument $1 (see --help)" >&2; exit 2 ;;
   esac
 done
 N="${N:-200}" D="${D:-64}" K="${K:-20}" ALGO="${ALGO:-dpp}" LAMBDA="${LAMBDA:-0.5}" CONNS="${CONNS:-32}"
-EXPOSURE="${EXPOSURE:-0}"
+EXPOSURE="${EXPOSURE:-0}" EXPOSURE_COMPRESS="${EXPOSURE_COMPRESS:-0}"
 
 if ! command -v oha >/dev/null; then
   echo "installing oha from crates.io (once; a few minutes)" >&2
@@ -58,7 +59,8 @@ lambda = $LAMBDA
 k = $K
 EOF
 if [ "$EXPOSURE" != 0 ]; then
-  printf '\n[exposure_log]\ndir = "%s"\nsample_rate = %s\n' "$work/exposure" "$EXPOSURE" >> "$work/medley.toml"
+  printf '\n[exposure_log]\ndir = "%s"\nsample_rate = %s\ncompress = %s\n' "$work/exposure" "$EXPOSURE" \
+    "$([ "$EXPOSURE_COMPRESS" = 1 ] && echo true || echo false)" >> "$work/medley.toml"
 fi
 $bin check-config "$work/medley.toml" >/dev/null
 start_medley "$bin" "$work/server.log" --config "$work/medley.toml"
@@ -88,7 +90,7 @@ PY
 }
 rate_of() { python3 -c 'import json,sys; print(int(json.load(open(sys.argv[1]))["summary"]["requestsPerSec"]))' "$1"; }
 
-echo "medley loadtest: N=$N d=$D k=$K $ALGO lambda=$LAMBDA, embedding_b64, $CONNS connections, ${duration}s per step, exposure log sample_rate $EXPOSURE"
+echo "medley loadtest: N=$N d=$D k=$K $ALGO lambda=$LAMBDA, embedding_b64, $CONNS connections, ${duration}s per step, exposure log sample_rate $EXPOSURE (compress $EXPOSURE_COMPRESS)"
 echo "machine: $(nproc) cores, $(awk -F': ' '/model name/ {print $2; exit}' /proc/cpuinfo), oha $(oha --version | awk '{print $2}'), load generator on the same box"
 rss_before="$(rss_kib)"
 drive 3 "$work/warmup.json"
@@ -139,6 +141,7 @@ print(f"exposure log: {get('medley_exposure_log_records_total')} records written
       f"{get('medley_exposure_log_dropped_total')} dropped on a full queue, "
       f"{get('medley_exposure_log_write_errors_total')} lost to write errors")
 PY
+  echo "exposure files: $(du -sb "$work/exposure" | cut -f1) bytes"
 fi
 
 if [ "$soak" -gt 0 ]; then

@@ -364,3 +364,105 @@ fn exposure_logs_zstd_and_shuffled_lines_replay_alike() {
         }
     }
 }
+
+/// Issue 18, `compress = true`: the exposure log's writer (the library's, as `medley serve` runs
+/// it) writes `.jsonl.zst` files that the `zstandard` Python package decodes to whole lines, and
+/// replay reads them with `--clicks`; a crash that cuts the last frame short loses only that
+/// frame's records, which replay reports.
+#[test]
+fn compressed_exposure_logs_decode_with_zstandard_and_replay() {
+    use medley::serve::exposure::{ExposureLog, LoggedRequest, Record, ServedRecord};
+    let dir = std::env::temp_dir().join(format!("medley-replay-zst-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    let spec = SampleSpec {
+        requests: 400,
+        candidates: 30,
+        dim: 8,
+        seed: 4,
+        with_clicks: true,
+        ..SampleSpec::default()
+    };
+    let mut bytes = Vec::new();
+    write(&spec, &mut bytes).unwrap();
+    let settings = medley::serve::config::ExposureLogSettings {
+        dir: dir.join("log"),
+        sample_rate: 1.0,
+        max_file_bytes: 200_000,
+        queue: 10_000,
+        queue_bytes: 1 << 30,
+        compress: true,
+    };
+    let log =
+        ExposureLog::start(&settings, std::sync::Arc::new(medley::serve::metrics::Metrics::new())).unwrap();
+    let mut clicks = String::new();
+    for line in String::from_utf8(bytes).unwrap().lines() {
+        let mut v: Value = serde_json::from_str(line).unwrap();
+        let clicked = v.as_object_mut().unwrap().remove("clicked").unwrap();
+        let id = v["request_id"].as_str().unwrap().to_owned();
+        let items = v["candidates"].as_array().unwrap()[..10]
+            .iter()
+            .map(|c| c["id"].as_str().unwrap().to_owned())
+            .collect();
+        clicks.push_str(&format!("{}\n", json!({"request_id": id, "clicked": clicked})));
+        log.submit(Record {
+            ts: chrono::Utc::now(),
+            request: LoggedRequest::Json(serde_json::to_vec(&v).unwrap().into()),
+            served: ServedRecord {
+                request_id: id,
+                slice: "default".into(),
+                arm: "default".into(),
+                algorithm: "relevance",
+                lambda: 0.0,
+                k: 10,
+                config_generation: 1,
+                config_digest: "0".into(),
+                items,
+                catalog_version: None,
+            },
+        });
+    }
+    log.stop();
+    std::fs::write(dir.join("clicks.jsonl"), clicks).unwrap();
+    let mut files: Vec<_> = std::fs::read_dir(dir.join("log")).unwrap().map(|e| e.unwrap().path()).collect();
+    files.sort();
+    assert!(files.len() >= 2, "{files:?}");
+    // Every complete file decodes with the reference library into whole JSON lines.
+    let python = std::env::var("MEDLEY_PYTHON").unwrap_or_else(|_| "python3".into());
+    let script = "import sys, json, zstandard\n\
+        n = 0\n\
+        for path in sys.argv[1:]:\n\
+        \x20   raw = open(path, 'rb').read()\n\
+        \x20   text = b''\n\
+        \x20   while raw:\n\
+        \x20       d = zstandard.ZstdDecompressor().decompressobj()\n\
+        \x20       text += d.decompress(raw)\n\
+        \x20       raw = d.unused_data\n\
+        \x20   assert text.endswith(b'\\n')\n\
+        \x20   n += sum(1 for l in text.splitlines() if json.loads(l)['served'])\n\
+        print(n)\n";
+    let out =
+        Command::new(&python).args(["-c", script]).args(&files).output().expect("python with zstandard");
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(String::from_utf8(out.stdout).unwrap().trim(), "400");
+    // A crash mid-frame: the last file loses its tail.
+    let last = files.last().unwrap();
+    let data = std::fs::read(last).unwrap();
+    std::fs::write(last, &data[..data.len() - 200]).unwrap();
+    let bin = env!("CARGO_BIN_EXE_medley");
+    let o = Command::new(bin)
+        .args(["replay", "--input"])
+        .arg(dir.join("log"))
+        .arg("--clicks")
+        .arg(dir.join("clicks.jsonl"))
+        .args(["--algorithms", "dpp", "--lambdas", "0,0.5", "--out"])
+        .arg(dir.join("out"))
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let report = String::from_utf8(o.stdout).unwrap();
+    assert!(report.contains("zstd stream cut short"), "{report}");
+    let slates: usize = report.split(" slates").next().unwrap().trim().parse().unwrap();
+    assert!(slates > 200 && slates < 400, "{report}");
+    // The served order was relevance: replaying it gives ips_clicks = clicks in the top 10.
+    assert!(report.contains("ips_clicks"), "{report}");
+}

@@ -17,7 +17,10 @@
 //! `medley_exposure_log_write_errors_total`, and the next record opens a new file.
 //!
 //! Files are `exposure-<UTC start time>-<seq>.jsonl` in `dir`, created with `create_new` so two
-//! processes sharing a directory never write the same file.
+//! processes sharing a directory never write the same file. With `compress = true` they are
+//! `.jsonl.zst`: lines gather for up to 1 s or 1 MiB and go out as one zstd
+//! frame each (ruzstd's encoder, pure Rust), so every file is a valid multi-frame zstd stream
+//! and a crash loses at most the queue, the frame being gathered and a partial last frame.
 
 use std::fs::File;
 use std::io::{BufWriter, Write};
@@ -211,6 +214,10 @@ impl ExposureLog {
             current: None,
             seq: 0,
             last_warning: None,
+            compress: settings.compress,
+            frame: Vec::new(),
+            frame_records: 0,
+            frame_started: None,
         };
         let worker =
             std::thread::Builder::new().name("medley-exposure".into()).spawn(move || writer.run(&rx))?;
@@ -274,7 +281,17 @@ struct Writer {
     current: Option<Current>,
     seq: u64,
     last_warning: Option<Instant>,
+    /// `compress`: lines gather in `frame` and go out as one zstd frame each.
+    compress: bool,
+    frame: Vec<u8>,
+    frame_records: u64,
+    frame_started: Option<Instant>,
 }
+
+/// A compressed log's frame goes out once it holds this many bytes of lines...
+const FRAME_BYTES: usize = 1 << 20;
+/// ...or once its first line is this old.
+const FRAME_AGE: Duration = Duration::from_secs(1);
 
 impl Writer {
     fn run(mut self, rx: &Receiver<Message>) {
@@ -284,11 +301,27 @@ impl Writer {
                 Ok(m) => m,
                 Err(TryRecvError::Empty) => {
                     // The queue ran empty: hand what is buffered to the OS, so a crash of the
-                    // process loses at most the queue.
-                    self.flush();
-                    match rx.recv() {
-                        Ok(m) => m,
-                        Err(_) => break,
+                    // process loses at most the queue (and, compressing, the frame being
+                    // gathered: at most FRAME_AGE of records).
+                    let age = self.frame_started.map(|t| t.elapsed());
+                    match age {
+                        Some(age) if age >= FRAME_AGE => {
+                            self.emit_frame();
+                            self.flush();
+                            continue;
+                        }
+                        Some(age) => match rx.recv_timeout(FRAME_AGE - age) {
+                            Ok(m) => m,
+                            Err(std::sync::mpsc::RecvTimeoutError::Timeout) => continue,
+                            Err(std::sync::mpsc::RecvTimeoutError::Disconnected) => break,
+                        },
+                        None => {
+                            self.flush();
+                            match rx.recv() {
+                                Ok(m) => m,
+                                Err(_) => break,
+                            }
+                        }
                     }
                 }
                 Err(TryRecvError::Disconnected) => break,
@@ -299,19 +332,54 @@ impl Writer {
                     record.encode(&mut line);
                     drop(record);
                     self.pending.fetch_sub(weight, Ordering::Relaxed);
+                    if self.compress {
+                        self.gather(&line);
+                        continue;
+                    }
                     match self.write(&line) {
                         Ok(()) => self.metrics.exposure_records.inc(),
-                        Err(e) => {
-                            self.metrics.exposure_write_errors.inc();
-                            self.warn(&e);
-                            // Start afresh on the next record; the failed file keeps what it has.
-                            self.current = None;
-                        }
+                        Err(e) => self.failed(&e, 1),
                     }
                 }
             }
         }
+        self.emit_frame();
         self.close();
+    }
+
+    /// A failed write of `records` records: counted, warned about, and the file given up (the
+    /// next record opens a new one; the failed file keeps what it has).
+    fn failed(&mut self, e: &std::io::Error, records: u64) {
+        self.metrics.exposure_write_errors.inc_by(records);
+        self.warn(e);
+        self.current = None;
+    }
+
+    /// Adds a line to the frame being gathered; sends the frame when it is full or old.
+    fn gather(&mut self, line: &[u8]) {
+        self.frame.extend_from_slice(line);
+        self.frame_records += 1;
+        let started = *self.frame_started.get_or_insert_with(Instant::now);
+        if self.frame.len() >= FRAME_BYTES || started.elapsed() >= FRAME_AGE {
+            self.emit_frame();
+        }
+    }
+
+    /// Compresses the gathered lines into one zstd frame (ruzstd's fastest level, about zstd's
+    /// level 1) and writes it; a file of such frames is one valid zstd stream.
+    fn emit_frame(&mut self) {
+        if self.frame.is_empty() {
+            return;
+        }
+        let compressed =
+            ruzstd::encoding::compress_to_vec(&self.frame[..], ruzstd::encoding::CompressionLevel::Fastest);
+        let records = std::mem::take(&mut self.frame_records);
+        self.frame.clear();
+        self.frame_started = None;
+        match self.write(&compressed) {
+            Ok(()) => self.metrics.exposure_records.inc_by(records),
+            Err(e) => self.failed(&e, records),
+        }
     }
 
     fn write(&mut self, line: &[u8]) -> std::io::Result<()> {
@@ -331,13 +399,15 @@ impl Writer {
         Ok(())
     }
 
-    /// Opens the next file: `exposure-<UTC now>-<seq>.jsonl`, never one that exists.
+    /// Opens the next file: `exposure-<UTC now>-<seq>.jsonl` (`.jsonl.zst` compressing), never
+    /// one that exists.
     fn open(&mut self) -> std::io::Result<Current> {
         std::fs::create_dir_all(&self.dir)?;
         let stamp = chrono::Utc::now().format("%Y%m%dT%H%M%SZ");
         loop {
             self.seq += 1;
-            let path = self.dir.join(format!("exposure-{stamp}-{:06}.jsonl", self.seq));
+            let extension = if self.compress { "jsonl.zst" } else { "jsonl" };
+            let path = self.dir.join(format!("exposure-{stamp}-{:06}.{extension}", self.seq));
             match std::fs::OpenOptions::new().write(true).create_new(true).open(&path) {
                 Ok(file) => {
                     tracing::info!(path = %path.display(), "exposure log file opened");
@@ -488,6 +558,7 @@ mod tests {
             max_file_bytes: 4096,
             queue: 1000,
             queue_bytes: 1 << 30,
+            compress: false,
         };
         let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
         let body = Bytes::from(format!("{{\"pad\":\"{}\"}}", "x".repeat(900)));
@@ -519,6 +590,57 @@ mod tests {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 
+    /// `compress = true`: files of zstd frames, each a run of whole lines, decoded here with
+    /// ruzstd's decoder; rotation counts compressed bytes; stop writes the last frame.
+    #[test]
+    fn compressed_files_are_zstd_frames_of_whole_lines() {
+        use std::io::Read as _;
+        let dir = std::env::temp_dir().join(format!("medley-exposure-zst-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        let metrics = Arc::new(Metrics::new());
+        let settings = ExposureLogSettings {
+            dir: dir.clone(),
+            sample_rate: 1.0,
+            max_file_bytes: 4096,
+            queue: 10_000,
+            queue_bytes: 1 << 30,
+            compress: true,
+        };
+        let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
+        // 3 000 lines of about 1.1 KB: several 1 MiB frames, so several 4 KiB files.
+        for i in 0..3000 {
+            let body = Bytes::from(format!("{{\"n\":{i},\"pad\":\"{}\"}}", "ab".repeat(500)));
+            log.submit(Record {
+                ts: chrono::Utc::now(),
+                request: LoggedRequest::Json(body),
+                served: served(&format!("r{i}")),
+            });
+        }
+        log.stop();
+        let mut files: Vec<PathBuf> = std::fs::read_dir(&dir).unwrap().map(|e| e.unwrap().path()).collect();
+        files.sort();
+        assert!(files.len() >= 2, "{files:?}");
+        let mut ids = Vec::new();
+        for f in &files {
+            assert!(f.to_str().unwrap().ends_with(".jsonl.zst"));
+            let bytes = std::fs::read(f).unwrap();
+            let mut rest = &bytes[..];
+            let mut text = String::new();
+            while !rest.is_empty() {
+                let mut frame = ruzstd::decoding::StreamingDecoder::new(&mut rest).unwrap();
+                frame.read_to_string(&mut text).unwrap();
+                assert!(text.ends_with('\n'), "a frame ends on a whole line");
+            }
+            for line in text.lines() {
+                let v: serde_json::Value = serde_json::from_str(line).unwrap();
+                ids.push(v["served"]["request_id"].as_str().unwrap().to_owned());
+            }
+        }
+        assert_eq!(ids, (0..3000).map(|i| format!("r{i}")).collect::<Vec<_>>());
+        assert_eq!(metrics.exposure_records.get(), 3000);
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
     #[test]
     fn a_full_queue_drops_and_counts_without_blocking() {
         let dir = std::env::temp_dir().join(format!("medley-exposure-full-{}", std::process::id()));
@@ -532,6 +654,7 @@ mod tests {
             max_file_bytes: 1 << 20,
             queue: 1,
             queue_bytes: 2000,
+            compress: false,
         };
         let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
         let body = Bytes::from(format!("{{\"pad\":\"{}\"}}", "x".repeat(1500)));

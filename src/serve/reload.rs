@@ -358,11 +358,13 @@ impl Reloader {
             );
         }
         let log_place = |c: &Config| {
-            c.exposure_log.as_ref().map(|l| (l.dir.clone(), l.max_file_bytes, l.queue, l.queue_bytes))
+            c.exposure_log
+                .as_ref()
+                .map(|l| (l.dir.clone(), l.max_file_bytes, l.queue, l.queue_bytes, l.compress))
         };
         if log_place(&config) != log_place(old.config()) {
             tracing::warn!(
-                "exposure_log dir, max_file_bytes, queue and queue_bytes (and turning the log on) change only on restart; sample_rate applies now"
+                "exposure_log dir, max_file_bytes, queue, queue_bytes and compress (and turning the log on) change only on restart; sample_rate applies now"
             );
         }
         let generation = old.generation() + u64::from(config_changed);

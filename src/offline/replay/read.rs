@@ -270,7 +270,17 @@ impl<'a> Reader<'a> {
             }
             let Some((reader, name, line_no)) = self.current.as_mut() else { continue };
             let mut bytes = Vec::new();
-            let n = reader.read_until(b'\n', &mut bytes).with_context(|| format!("reading {name}"))?;
+            let n = match reader.read_until(b'\n', &mut bytes) {
+                Ok(n) => n,
+                // A compressed log whose last frame a crash cut short: what decoded is kept.
+                Err(e) if name.ends_with(".zst") => {
+                    let at = format!("{name}:{} (zstd stream cut short: {e})", *line_no + 1);
+                    self.stats.partial_last_lines.push(at);
+                    self.current = None;
+                    continue;
+                }
+                Err(e) => return Err(anyhow::Error::new(e).context(format!("reading {name}"))),
+            };
             if n == 0 {
                 self.current = None;
                 continue;

@@ -30,10 +30,11 @@ pub fn describe(config: &Config) -> String {
     if let Some(log) = &config.exposure_log {
         let _ = writeln!(
             out,
-            "exposure log: {} (sample_rate {}, files up to {} bytes, queue {} records / {} bytes)",
+            "exposure log: {} (sample_rate {}, files up to {} bytes{}, queue {} records / {} bytes)",
             log.dir.display(),
             log.sample_rate,
             log.max_file_bytes,
+            if log.compress { ", zstd" } else { "" },
             log.queue,
             log.queue_bytes
         );

@@ -42,6 +42,8 @@ pub struct RawExposureLog {
     /// Bytes of records waiting for the writer; beyond it new ones are dropped and counted
     /// (default 256 MiB), so a queue of large slates stays bounded in memory too.
     pub queue_bytes: Option<u64>,
+    /// Write zstd-compressed `.jsonl.zst` files (default false).
+    pub compress: Option<bool>,
 }
 
 /// The `[catalog]` table.

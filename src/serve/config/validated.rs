@@ -189,6 +189,8 @@ pub struct ExposureLogSettings {
     pub queue: usize,
     /// Bytes the queue holds.
     pub queue_bytes: usize,
+    /// Write `.jsonl.zst` files.
+    pub compress: bool,
 }
 
 /// Default `exposure_log.max_file_bytes`: 256 MiB.
@@ -222,6 +224,7 @@ fn validate_exposure_log(raw: &super::raw::RawExposureLog) -> Result<ExposureLog
         max_file_bytes,
         queue: count("queue", raw.queue, EXPOSURE_DEFAULT_QUEUE)?,
         queue_bytes: count("queue_bytes", raw.queue_bytes, EXPOSURE_DEFAULT_QUEUE_BYTES)?,
+        compress: raw.compress.unwrap_or(false),
     })
 }
 
