@@ -444,10 +444,13 @@ fn compressed_exposure_logs_decode_with_zstandard_and_replay() {
         Command::new(&python).args(["-c", script]).args(&files).output().expect("python with zstandard");
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     assert_eq!(String::from_utf8(out.stdout).unwrap().trim(), "400");
-    // A crash mid-frame: the last file loses its tail.
+    // A crash mid-frame: the last file loses its tail. Crashes can also leave a file opened but
+    // empty, or holding only the start of a frame header.
     let last = files.last().unwrap();
     let data = std::fs::read(last).unwrap();
     std::fs::write(last, &data[..data.len() - 200]).unwrap();
+    std::fs::write(dir.join("log/exposure-zz-000098.jsonl.zst"), b"").unwrap();
+    std::fs::write(dir.join("log/exposure-zz-000099.jsonl.zst"), &data[..3]).unwrap();
     let bin = env!("CARGO_BIN_EXE_medley");
     let o = Command::new(bin)
         .args(["replay", "--input"])
@@ -461,6 +464,8 @@ fn compressed_exposure_logs_decode_with_zstandard_and_replay() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let report = String::from_utf8(o.stdout).unwrap();
     assert!(report.contains("zstd stream cut short"), "{report}");
+    assert!(report.contains("exposure-zz-000099.jsonl.zst:1 (zstd stream cut short"), "{report}");
+    assert!(!report.contains("exposure-zz-000098"), "an empty file holds no lines: {report}");
     let slates: usize = report.split(" slates").next().unwrap().trim().parse().unwrap();
     assert!(slates > 200 && slates < 400, "{report}");
     // The served order was relevance: replaying it gives ips_clicks = clicks in the top 10.

@@ -194,6 +194,11 @@ fn open(path: &Path, read: Option<Arc<AtomicU64>>) -> anyhow::Result<Box<dyn Buf
     let file = std::fs::File::open(path).with_context(|| format!("opening {}", path.display()))?;
     let counted = Counting { inner: file, read: read.unwrap_or_default() };
     if path.extension().is_some_and(|e| e == "zst") {
+        // An empty file (a log opened, then stopped or killed before its first frame) holds no
+        // lines.
+        if std::fs::metadata(path).is_ok_and(|m| m.len() == 0) {
+            return Ok(Box::new(std::io::empty()));
+        }
         let source = BufReader::with_capacity(1 << 20, counted);
         let decoder = ruzstd::decoding::StreamingDecoder::new(source)
             .map_err(|e| anyhow::anyhow!("{}: not zstd: {e}", path.display()))?;
@@ -265,8 +270,19 @@ impl<'a> Reader<'a> {
             if self.current.is_none() {
                 let Some(path) = self.files.get(self.next_file).cloned() else { return Ok(None) };
                 self.next_file += 1;
-                let reader = open(&path, Some(self.bytes_read.clone()))?;
-                self.current = Some((reader, path.display().to_string(), 0));
+                let name = path.display().to_string();
+                let reader = match open(&path, Some(self.bytes_read.clone())) {
+                    Ok(reader) => reader,
+                    // A compressed log a crash cut short before its first frame was whole.
+                    Err(e) if name.ends_with(".zst") && path.is_file() => {
+                        self.stats
+                            .partial_last_lines
+                            .push(format!("{name}:1 (zstd stream cut short: {e:#})"));
+                        continue;
+                    }
+                    Err(e) => return Err(e),
+                };
+                self.current = Some((reader, name, 0));
             }
             let Some((reader, name, line_no)) = self.current.as_mut() else { continue };
             let mut bytes = Vec::new();
