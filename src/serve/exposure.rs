@@ -455,6 +455,26 @@ impl Writer {
 mod tests {
     use super::*;
 
+    /// A log in `dir` logging every request, with the given sizes.
+    fn start(
+        dir: &Path,
+        max_file_bytes: u64,
+        queue: usize,
+        queue_bytes: usize,
+        compress: bool,
+        metrics: &Arc<Metrics>,
+    ) -> ExposureLog {
+        let settings = ExposureLogSettings {
+            dir: dir.to_path_buf(),
+            sample_rate: 1.0,
+            max_file_bytes,
+            queue,
+            queue_bytes,
+            compress,
+        };
+        ExposureLog::start(&settings, metrics.clone()).unwrap()
+    }
+
     fn served(id: &str) -> ServedRecord {
         ServedRecord {
             request_id: id.into(),
@@ -552,15 +572,7 @@ mod tests {
         let dir = std::env::temp_dir().join(format!("medley-exposure-unit-{}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
         let metrics = Arc::new(Metrics::new());
-        let settings = ExposureLogSettings {
-            dir: dir.clone(),
-            sample_rate: 1.0,
-            max_file_bytes: 4096,
-            queue: 1000,
-            queue_bytes: 1 << 30,
-            compress: false,
-        };
-        let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
+        let log = start(&dir, 4096, 1000, 1 << 30, false, &metrics);
         let body = Bytes::from(format!("{{\"pad\":\"{}\"}}", "x".repeat(900)));
         for i in 0..40 {
             log.submit(Record {
@@ -598,15 +610,7 @@ mod tests {
         let dir = std::env::temp_dir().join(format!("medley-exposure-zst-{}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
         let metrics = Arc::new(Metrics::new());
-        let settings = ExposureLogSettings {
-            dir: dir.clone(),
-            sample_rate: 1.0,
-            max_file_bytes: 4096,
-            queue: 10_000,
-            queue_bytes: 1 << 30,
-            compress: true,
-        };
-        let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
+        let log = start(&dir, 4096, 10_000, 1 << 30, true, &metrics);
         // 3 000 lines of about 1.1 KB: several 1 MiB frames, so several 4 KiB files.
         for i in 0..3000 {
             let body = Bytes::from(format!("{{\"n\":{i},\"pad\":\"{}\"}}", "ab".repeat(500)));
@@ -648,15 +652,7 @@ mod tests {
         let metrics = Arc::new(Metrics::new());
         // A byte budget of one record: while the writer holds none, the second of two quick
         // submissions may pass; of 200 submissions far more than half are refused.
-        let settings = ExposureLogSettings {
-            dir: dir.clone(),
-            sample_rate: 1.0,
-            max_file_bytes: 1 << 20,
-            queue: 1,
-            queue_bytes: 2000,
-            compress: false,
-        };
-        let log = ExposureLog::start(&settings, metrics.clone()).unwrap();
+        let log = start(&dir, 1 << 20, 1, 2000, false, &metrics);
         let body = Bytes::from(format!("{{\"pad\":\"{}\"}}", "x".repeat(1500)));
         for i in 0..200 {
             log.submit(Record {
