@@ -38,6 +38,49 @@ pub struct LoggedSlate {
     pub line: u64,
 }
 
+impl LoggedSlate {
+    /// A logged slate from its validated candidates, the ids the line logs as clicked (among
+    /// the candidates or not; repeats count once), and the served slate's ids in order when the
+    /// line logged it. Items are left unnumbered ([`LoggedSlate::item`] is for the reader to
+    /// fill).
+    #[must_use]
+    pub fn new(
+        input: RerankInput,
+        clicked: &[String],
+        served: Option<&[String]>,
+        key: u64,
+        line: u64,
+    ) -> Self {
+        let mut distinct: Vec<&str> = clicked.iter().map(String::as_str).collect();
+        distinct.sort_unstable();
+        distinct.dedup();
+        let clicked = input.ids().iter().map(|id| distinct.binary_search(&id.as_str()).is_ok()).collect();
+        let served_rank = served.map(|items| {
+            let rank: std::collections::HashMap<&str, u32> =
+                items.iter().enumerate().map(|(r, id)| (id.as_str(), (r + 1) as u32)).collect();
+            input.ids().iter().map(|id| rank.get(id.as_str()).copied().unwrap_or(0)).collect()
+        });
+        Self { input, clicked, relevant: distinct.len(), served_rank, key, item: Vec::new(), line }
+    }
+}
+
+/// The grid's cells in report order: per algorithm, unbounded first and then one line per
+/// window for the algorithms that take one (`dpp`, `ssd`), each over every lambda.
+#[must_use]
+pub fn grid_cells(algorithms: &[&'static dyn Diversifier], windows: &[usize], lambdas: &[f64]) -> Vec<Cell> {
+    let mut cells = Vec::new();
+    for &algorithm in algorithms {
+        let mut lines = vec![None];
+        if algorithm.takes_window() {
+            lines.extend(windows.iter().map(|&w| Some(w)));
+        }
+        for window in lines {
+            cells.extend(lambdas.iter().map(|&lambda| Cell { algorithm, window, lambda }));
+        }
+    }
+    cells
+}
+
 /// One cell of the grid.
 #[derive(Debug, Clone, Copy)]
 pub struct Cell {
@@ -143,6 +186,129 @@ impl CellAccumulator {
                 }
             }
         }
+    }
+}
+
+impl CellAccumulator {
+    /// Adds another partition's sums of the same cell; `item_map[j]` is this accumulator's
+    /// number for the other's item `j` (partitions number items as they meet them).
+    ///
+    /// Exact for the counts and exposure; the sums are added in a different order than one
+    /// accumulator over all slates would, so means agree to rounding (about 1e-15 relative).
+    pub fn merge(&mut self, other: &Self, item_map: &[u32]) {
+        for j in 0..col::COUNT {
+            self.sums[j] += other.sums[j];
+            self.counts[j] += other.counts[j];
+        }
+        self.boot.merge(&other.boot);
+        for (j, &e) in other.exposure.iter().enumerate() {
+            if e == 0 {
+                continue;
+            }
+            let Some(&to) = item_map.get(j) else { continue };
+            let to = to as usize;
+            if self.exposure.len() <= to {
+                self.exposure.resize(to + 1, 0);
+            }
+            self.exposure[to] += e;
+        }
+    }
+
+    /// Appends the accumulator's state to `out` (little-endian; read back by
+    /// [`CellAccumulator::read_state`]).
+    fn write_state(&self, out: &mut Vec<u8>) {
+        let f64s = |xs: &[f64], out: &mut Vec<u8>| xs.iter().for_each(|x| out.extend(x.to_le_bytes()));
+        f64s(&self.sums, out);
+        self.counts.iter().for_each(|c| out.extend(c.to_le_bytes()));
+        out.extend((self.boot.sums.len() as u64).to_le_bytes());
+        f64s(&self.boot.weights, out);
+        for s in &self.boot.sums {
+            f64s(s, out);
+        }
+        out.extend((self.exposure.len() as u64).to_le_bytes());
+        self.exposure.iter().for_each(|e| out.extend(e.to_le_bytes()));
+    }
+
+    /// Replaces the state with one written by [`CellAccumulator::write_state`].
+    fn read_state(&mut self, r: &mut StateReader<'_>) -> Result<(), String> {
+        for x in &mut self.sums {
+            *x = r.f64()?;
+        }
+        for c in &mut self.counts {
+            *c = r.u64()?;
+        }
+        let statistics = r.u64()? as usize;
+        if statistics != self.boot.sums.len() {
+            return Err(format!(
+                "state holds {statistics} bootstrap statistics, want {}",
+                self.boot.sums.len()
+            ));
+        }
+        for w in &mut self.boot.weights {
+            *w = r.f64()?;
+        }
+        for s in &mut self.boot.sums {
+            for x in s.iter_mut() {
+                *x = r.f64()?;
+            }
+        }
+        let n = r.u64()? as usize;
+        if n > r.remaining() / 8 {
+            return Err(format!("state claims {n} exposure counts but holds fewer"));
+        }
+        self.exposure = (0..n).map(|_| r.u64()).collect::<Result<_, _>>()?;
+        Ok(())
+    }
+}
+
+/// Reads little-endian values off a byte slice, with a message when it runs short.
+#[derive(Debug)]
+pub struct StateReader<'a> {
+    bytes: &'a [u8],
+}
+
+impl<'a> StateReader<'a> {
+    /// A reader over `bytes`.
+    #[must_use]
+    pub fn new(bytes: &'a [u8]) -> Self {
+        Self { bytes }
+    }
+
+    /// Bytes left.
+    #[must_use]
+    pub fn remaining(&self) -> usize {
+        self.bytes.len()
+    }
+
+    /// The next `n` bytes.
+    ///
+    /// # Errors
+    /// When fewer are left.
+    pub fn take(&mut self, n: usize) -> Result<&'a [u8], String> {
+        if self.bytes.len() < n {
+            return Err("the state ends early (truncated or not a replay state)".into());
+        }
+        let (head, rest) = self.bytes.split_at(n);
+        self.bytes = rest;
+        Ok(head)
+    }
+
+    /// The next little-endian u64.
+    ///
+    /// # Errors
+    /// When fewer than 8 bytes are left.
+    pub fn u64(&mut self) -> Result<u64, String> {
+        let mut b = [0_u8; 8];
+        b.copy_from_slice(self.take(8)?);
+        Ok(u64::from_le_bytes(b))
+    }
+
+    /// The next little-endian f64.
+    ///
+    /// # Errors
+    /// When fewer than 8 bytes are left.
+    pub fn f64(&mut self) -> Result<f64, String> {
+        self.u64().map(f64::from_bits)
     }
 }
 
@@ -288,6 +454,62 @@ impl Grid {
         bootstrap::interval95(diffs).0
     }
 
+    /// Adds another grid's sums (same cells and options, else an error); `item_map[j]` is this
+    /// grid's number for the other's item `j`, and `items` the distinct items of both.
+    ///
+    /// # Errors
+    /// When the grids' cells or options differ.
+    pub fn merge(&mut self, other: &Self, item_map: &[u32], items: usize) -> Result<(), String> {
+        let same_cells = self.cells.len() == other.cells.len()
+            && self.cells.iter().zip(&other.cells).all(|(a, b)| {
+                a.algorithm.name() == b.algorithm.name()
+                    && a.window == b.window
+                    && a.lambda.to_bits() == b.lambda.to_bits()
+            });
+        let (a, b) = (self.opts, other.opts);
+        let same_opts = a.k == b.k
+            && a.eta.to_bits() == b.eta.to_bits()
+            && a.clip.to_bits() == b.clip.to_bits()
+            && a.alpha.to_bits() == b.alpha.to_bits()
+            && a.pick_column == b.pick_column;
+        if !(same_cells && same_opts) {
+            return Err(
+                "the two replays have different grids (algorithms, lambdas, windows, k or options)".into()
+            );
+        }
+        for (x, y) in self.acc.iter_mut().zip(&other.acc) {
+            x.merge(y, item_map);
+        }
+        self.set_items(items);
+        Ok(())
+    }
+
+    /// Appends every cell's sums and the item count to `out`; [`Grid::read_state`] on a grid
+    /// built with the same cells and options reads them back.
+    pub fn write_state(&self, out: &mut Vec<u8>) {
+        out.extend((self.acc.len() as u64).to_le_bytes());
+        out.extend((self.items as u64).to_le_bytes());
+        for acc in &self.acc {
+            acc.write_state(out);
+        }
+    }
+
+    /// Replaces the sums with a state written by [`Grid::write_state`].
+    ///
+    /// # Errors
+    /// A state of another grid, or one cut short.
+    pub fn read_state(&mut self, r: &mut StateReader<'_>) -> Result<(), String> {
+        let cells = r.u64()? as usize;
+        if cells != self.acc.len() {
+            return Err(format!("the state holds {cells} cells, this grid {}", self.acc.len()));
+        }
+        self.items = r.u64()? as usize;
+        for acc in &mut self.acc {
+            acc.read_state(r)?;
+        }
+        Ok(())
+    }
+
     /// Number of cells, baseline included.
     #[must_use]
     pub fn len(&self) -> usize {
@@ -404,7 +626,60 @@ pub struct Point {
     pub ndcg_diff_hi: f64,
 }
 
+/// The report's metric columns, in `frontier.csv` order (after `algorithm`, `lambda`,
+/// `window`); [`Point::values`] gives a cell's values in this order.
+pub const REPORT_COLUMNS: [&str; 20] = [
+    "recall",
+    "ndcg",
+    "recall_reachable",
+    "ndcg_reachable",
+    "relevance_retained",
+    "entropy_bits",
+    "ild",
+    "distinct",
+    "coverage",
+    "gini",
+    "miscalibration",
+    "protected_share",
+    "ndcg_lo",
+    "ndcg_hi",
+    "entropy_lo",
+    "entropy_hi",
+    "ndcg_diff_lo",
+    "ndcg_diff_hi",
+    "ips_clicks",
+    "alpha_ndcg",
+];
+
 impl Point {
+    /// The cell's values of [`REPORT_COLUMNS`], in order; `None` where no slate had the input
+    /// (a profile, a fairness floor, a served slate).
+    #[must_use]
+    pub fn values(&self) -> [Option<f64>; 20] {
+        [
+            Some(self.recall),
+            Some(self.ndcg),
+            Some(self.recall_reachable),
+            Some(self.ndcg_reachable),
+            Some(self.relevance_retained),
+            Some(self.entropy),
+            Some(self.ild),
+            Some(self.distinct),
+            Some(self.coverage),
+            Some(self.gini),
+            self.miscalibration,
+            self.protected_share,
+            Some(self.ndcg_lo),
+            Some(self.ndcg_hi),
+            Some(self.entropy_lo),
+            Some(self.entropy_hi),
+            Some(self.ndcg_diff_lo),
+            Some(self.ndcg_diff_hi),
+            self.ips_clicks,
+            Some(self.alpha_ndcg),
+        ]
+    }
+
     /// The cell's algorithm as the report names it: `dpp`, or `dpp w=10` with a window.
     #[must_use]
     pub fn label(&self) -> String {

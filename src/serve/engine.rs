@@ -209,7 +209,7 @@ impl Engine {
         }
         let dropped = n_sent - candidates.len();
         let as_sent = |error: ValidationError| {
-            let source = error_index(&error).and_then(|i| sources.get(i).copied()).unwrap_or_default();
+            let source = error.index().and_then(|i| sources.get(i).copied()).unwrap_or_default();
             let error = if dropped == 0 {
                 error
             } else {
@@ -262,20 +262,6 @@ fn sampled(rate: f64) -> bool {
     }
     let z = crate::serve::config::mix64(COUNTER.fetch_add(0x9e37_79b9_7f4a_7c15, Ordering::Relaxed));
     ((z >> 11) as f64) / ((1u64 << 53) as f64) < rate
-}
-
-/// The candidate index a validation error is about.
-fn error_index(e: &ValidationError) -> Option<usize> {
-    match *e {
-        ValidationError::DuplicateId { index, .. }
-        | ValidationError::TooLong { index, .. }
-        | ValidationError::NonFinite { index, .. }
-        | ValidationError::MissingEmbedding { index, .. }
-        | ValidationError::DimensionMismatch { index, .. }
-        | ValidationError::DimensionOutOfRange { index, .. }
-        | ValidationError::ZeroNorm { index } => Some(index),
-        _ => None,
-    }
 }
 
 /// A validated request, ready to run.

@@ -101,38 +101,24 @@ pub fn pick<'a>(
         .collect()
 }
 
-/// The CSV header of `frontier.csv`.
+/// The CSV header of `frontier.csv`: `algorithm,lambda,window`, then
+/// [`medley_core::replay::REPORT_COLUMNS`].
 pub const CSV_HEADER: &str = "algorithm,lambda,window,recall,ndcg,recall_reachable,ndcg_reachable,relevance_retained,entropy_bits,ild,distinct,coverage,gini,miscalibration,protected_share,ndcg_lo,ndcg_hi,entropy_lo,entropy_hi,ndcg_diff_lo,ndcg_diff_hi,ips_clicks,alpha_ndcg";
 
-/// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row).
+/// One CSV row; `label` fills the algorithm column (`baseline` for the baseline row). Values
+/// are written in full (the shortest decimal that reads back to the same f64), so a program
+/// comparing replays, or the Python package's table, sees the same numbers; an empty field is
+/// a metric no slate had the input for.
 #[must_use]
 pub fn csv_row(label: &str, p: &Point) -> String {
-    format!(
-        "{},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{},{:.6},{:.6},{:.6},{:.6},{:.6},{:.6},{},{:.6}",
-        label,
-        p.lambda,
-        p.window.map_or_else(String::new, |w| w.to_string()),
-        p.recall,
-        p.ndcg,
-        p.recall_reachable,
-        p.ndcg_reachable,
-        p.relevance_retained,
-        p.entropy,
-        p.ild,
-        p.distinct,
-        p.coverage,
-        p.gini,
-        p.miscalibration.map_or_else(String::new, |x| format!("{x:.6}")),
-        p.protected_share.map_or_else(String::new, |x| format!("{x:.6}")),
-        p.ndcg_lo,
-        p.ndcg_hi,
-        p.entropy_lo,
-        p.entropy_hi,
-        p.ndcg_diff_lo,
-        p.ndcg_diff_hi,
-        p.ips_clicks.map_or_else(String::new, |x| format!("{x:.6}")),
-        p.alpha_ndcg,
-    )
+    let mut row = format!("{label},{},{}", p.lambda, p.window.map_or_else(String::new, |w| w.to_string()));
+    for v in p.values() {
+        row.push(',');
+        if let Some(v) = v {
+            row.push_str(&v.to_string());
+        }
+    }
+    row
 }
 
 #[cfg(test)]
@@ -152,5 +138,11 @@ mod tests {
         assert_eq!(parse_pick("ndcg_reachable>=0.9*baseline").unwrap().metric, "ndcg_reachable");
         assert_eq!(parse_pick("recall_reachable>=0.9*baseline").unwrap().metric, "recall_reachable");
         assert!(parse_pick("mrr>=0.9*baseline").is_err());
+    }
+
+    #[test]
+    fn the_csv_header_names_the_core_report_columns() {
+        let want = format!("algorithm,lambda,window,{}", medley_core::replay::REPORT_COLUMNS.join(","));
+        assert_eq!(CSV_HEADER, want);
     }
 }

@@ -135,23 +135,7 @@ pub fn evaluate_lines(
 pub fn run(engine: &Engine, input: &Path, clicks: Option<&Clicks>, opts: &Options) -> anyhow::Result<String> {
     use std::fmt::Write as _;
     let files = list_inputs(input)?;
-    // Windows apply to the algorithms that take one; every algorithm runs unbounded too.
-    let windows_of = |a: &dyn Diversifier| -> Vec<Option<usize>> {
-        let mut w = vec![None];
-        if a.takes_window() {
-            w.extend(opts.windows.iter().map(|&w| Some(w)));
-        }
-        w
-    };
-    let cells: Vec<Cell> = opts
-        .algorithms
-        .iter()
-        .flat_map(|&a| {
-            windows_of(a).into_iter().flat_map(move |window| {
-                opts.lambdas.iter().map(move |&lambda| Cell { algorithm: a, window, lambda })
-            })
-        })
-        .collect();
+    let cells = medley_core::replay::grid_cells(&opts.algorithms, &opts.windows, &opts.lambdas);
     let gopts = GridOptions {
         k: opts.k,
         eta: opts.eta,

@@ -440,22 +440,5 @@ fn parse_line(engine: &Engine, clicks: Option<&Clicks>, line: &RawLine) -> Parse
         Ok(p) => p.input,
         Err(e) => return Parsed::Invalid(e.to_string()),
     };
-    let mut distinct: Vec<&str> = clicked.iter().map(String::as_str).collect();
-    distinct.sort_unstable();
-    distinct.dedup();
-    let clicked = input.ids().iter().map(|id| distinct.binary_search(&id.as_str()).is_ok()).collect();
-    let served_rank = served.map(|items| {
-        let rank: HashMap<&str, u32> =
-            items.iter().enumerate().map(|(r, id)| (id.as_str(), (r + 1) as u32)).collect();
-        input.ids().iter().map(|id| rank.get(id.as_str()).copied().unwrap_or(0)).collect()
-    });
-    Parsed::Slate(Box::new(Slate {
-        input,
-        clicked,
-        relevant: distinct.len(),
-        served_rank,
-        key,
-        item: Vec::new(),
-        line: line.number,
-    }))
+    Parsed::Slate(Box::new(Slate::new(input, &clicked, served.as_deref(), key, line.number)))
 }
