@@ -30,6 +30,8 @@ REPLAY_SCHEMA = pa.schema(
         ("clicked", pa.list_(pa.string())),
         ("served", pa.list_(pa.string())),
         ("profile", pa.map_(pa.string(), pa.float64())),
+        ("groups", pa.list_(pa.string())),
+        ("fairness", pa.struct([("protected", pa.string()), ("share", pa.float64()), ("alpha", pa.float64())])),
     ]
 )
 
@@ -109,6 +111,9 @@ def _rows_of_lines(lines: Iterable[str]) -> dict:
         cols["clicked"].append(doc.get("clicked") or [])
         cols["served"].append(served.get("items") if served is not None else None)
         cols["profile"].append(list(profile.items()) if isinstance(profile, dict) else None)
+        fairness = request.get("fairness")
+        cols["groups"].append([c.get("group") for c in candidates] if fairness else None)
+        cols["fairness"].append(fairness if isinstance(fairness, dict) else None)
     return cols
 
 
@@ -135,7 +140,8 @@ def read_exposure_log(spark, path: str, clicks=None):
     ddl = (
         "request_id string, ids array<string>, scores array<double>, embeddings array<binary>, "
         "categories array<string>, clicked array<string>, served array<string>, "
-        "profile map<string, double>"
+        "profile map<string, double>, groups array<string>, "
+        "fairness struct<protected: string, share: double, alpha: double>"
     )
     df = spark.read.text(path).mapInArrow(convert, ddl)
     if clicks is None:

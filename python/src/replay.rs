@@ -4,7 +4,8 @@
 //! One row is one logged slate (the replay schema, README "Python"):
 //! `request_id` utf8, `ids` list<utf8>, `scores` list<float64>, `embeddings`
 //! list<list<float32>> or list<binary> (f32 little-endian), `categories` list<utf8>, `clicked`
-//! list<utf8>, optional `served` list<utf8>, optional `profile` map<utf8, float64>. Rows are
+//! list<utf8>, optional `served` list<utf8>, optional `profile` map<utf8, float64>, optional
+//! `groups` list<utf8> with `fairness` struct<protected utf8, share float64, alpha float64>. Rows are
 //! validated as `medley replay` validates a line (min-max scores, embeddings required); a row
 //! without clicks is skipped and counted, an invalid one skipped, counted and its first reasons
 //! kept.
@@ -388,6 +389,8 @@ struct Columns {
     clicked: ArrayRef,
     served: Option<ArrayRef>,
     profile: Option<ArrayRef>,
+    groups: Option<ArrayRef>,
+    fairness: Option<ArrayRef>,
 }
 
 impl Columns {
@@ -407,6 +410,8 @@ impl Columns {
             clicked: need("clicked")?,
             served: may("served"),
             profile: may("profile"),
+            groups: may("groups"),
+            fairness: may("fairness"),
         })
     }
 
@@ -464,6 +469,20 @@ impl Columns {
             .map_err(|e| format!("{}: {e}", e.code()))?;
         if let Some(profile) = self.profile.as_ref().map(|p| profile_value(p, row)).transpose()?.flatten() {
             input = input.with_profile(profile).map_err(|e| format!("{}: {e}", e.code()))?;
+        }
+        if let Some((protected, share, alpha)) =
+            self.fairness.as_ref().map(|f| fairness_value(f, row)).transpose()?.flatten()
+        {
+            let groups =
+                match self.groups.as_ref().map(|g| list_value(g, row, "groups")).transpose()?.flatten() {
+                    Some(g) => strings(&g, "groups")?,
+                    None => vec![None; input.len()],
+                };
+            if groups.len() != input.len() {
+                return Err(format!("{} groups for {} ids", groups.len(), input.len()));
+            }
+            let flags = groups.iter().map(|g| g.as_deref() == Some(protected.as_str())).collect();
+            input = input.with_fairness(flags, share, alpha).map_err(|e| format!("{}: {e}", e.code()))?;
         }
         let served = match self.served.as_ref().map(|s| list_value(s, row, "served")).transpose()?.flatten() {
             Some(s) => Some(strings(&s, "served")?.into_iter().flatten().collect::<Vec<String>>()),
@@ -578,6 +597,29 @@ fn embedding_rows(a: &ArrayRef) -> Result<Vec<Option<Vec<f32>>>, String> {
         }
     }
     Ok(out)
+}
+
+/// Row `row` of the fairness struct column: (protected, share, alpha).
+fn fairness_value(col: &ArrayRef, row: usize) -> Result<Option<(String, f64, f64)>, String> {
+    if col.is_null(row) {
+        return Ok(None);
+    }
+    let DataType::Struct(_) = col.data_type() else {
+        return Err(format!(
+            "fairness is {}; want struct<protected: utf8, share: float64, alpha: float64>",
+            col.data_type()
+        ));
+    };
+    let s = col.as_struct();
+    let field = |name: &str| s.column_by_name(name).ok_or_else(|| format!("fairness has no {name:?} field"));
+    let protected = string_at(field("protected")?.as_ref(), row, "fairness.protected")?
+        .ok_or("fairness.protected is null")?;
+    let num = |name: &str| -> Result<f64, String> {
+        let c = field(name)?;
+        let v = floats(&c.slice(row, 1), &format!("fairness.{name}"))?;
+        Ok(v[0])
+    };
+    Ok(Some((protected, num("share")?, num("alpha")?)))
 }
 
 /// Row `row` of the profile map column, keys in order (as the service's JSON map).

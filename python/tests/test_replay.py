@@ -14,7 +14,7 @@ LAMBDAS = [0.0, 0.5, 1.0]
 
 
 def test_replay_equals_the_cli(sample_corpus, medley_bin, tmp_path):
-    corpus = sample_corpus(600, 30, 8, 11, "--with-profiles")
+    corpus = sample_corpus(600, 30, 8, 11, "--with-profiles", "--with-groups")
     cli = cli_frontier(medley_bin, corpus, tmp_path, ALGORITHMS, LAMBDAS, 10, windows=[4])
     acc = medley.Replay(ALGORITHMS, LAMBDAS, 10, windows=[4])
     for batch in batches_of(corpus, 128):
@@ -23,6 +23,8 @@ def test_replay_equals_the_cli(sample_corpus, medley_bin, tmp_path):
     assert_tables_equal(table, cli, 1e-9)
     assert acc.stats["slates"] == table.attrs["stats"]["slates"] > 500
     assert acc.stats["invalid"] == 0
+    # The lines' fairness floors were applied: the protected share is reported.
+    assert not table["protected_share"].isna().any()
 
 
 def test_partitions_merge_to_one_pass_in_any_order(sample_corpus):
