@@ -433,8 +433,76 @@ impl RerankInput {
         if n > limits.max_candidates {
             return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
         }
-        let any_embedding = candidates.iter().any(|c| c.embedding.is_some());
-        let dim = match candidates.first().map(|c| c.embedding.as_ref()) {
+        let mut ids = Vec::with_capacity(n);
+        let mut scores = Vec::with_capacity(n);
+        let mut categories = Vec::with_capacity(n);
+        let mut embeddings = Vec::with_capacity(n);
+        for c in candidates {
+            ids.push(c.id);
+            scores.push(c.score);
+            categories.push(c.category);
+            embeddings.push(c.embedding);
+        }
+        Self::assemble(
+            ids,
+            &scores,
+            categories,
+            |i| embeddings[i].as_deref(),
+            transform,
+            require_embeddings,
+            limits,
+        )
+    }
+
+    /// Validates a slate given as columns: ids, scores, categories, and optionally an `n × d`
+    /// row-major embedding matrix. The same checks, errors and result as [`RerankInput::new`]
+    /// on the same candidates, without a vector per candidate: for callers that hold arrays
+    /// (the Python package's numpy inputs).
+    ///
+    /// # Errors
+    /// As [`RerankInput::new`].
+    ///
+    /// # Panics
+    /// If `scores`, `categories` or the matrix's rows do not have one entry per id (a caller
+    /// bug).
+    pub fn from_columns(
+        ids: Vec<String>,
+        scores: &[f64],
+        categories: Vec<Option<String>>,
+        embeddings: Option<(&[f32], usize)>,
+        transform: ScoreTransform,
+        require_embeddings: bool,
+        limits: &Limits,
+    ) -> Result<Self, ValidationError> {
+        let n = ids.len();
+        assert!(scores.len() == n && categories.len() == n, "one score and one category per id");
+        if n > limits.max_candidates {
+            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
+        }
+        match embeddings {
+            None => Self::assemble(ids, scores, categories, |_| None, transform, require_embeddings, limits),
+            Some((data, d)) => {
+                assert_eq!(data.len(), n * d, "an n x d embedding matrix");
+                let row = |i: usize| Some(&data[i * d..(i + 1) * d]);
+                Self::assemble(ids, scores, categories, row, transform, require_embeddings, limits)
+            }
+        }
+    }
+
+    /// The validation both constructors share, over columns; `embedding(i)` is candidate `i`'s
+    /// embedding as sent.
+    fn assemble<'e>(
+        ids: Vec<String>,
+        sent_scores: &[f64],
+        categories: Vec<Option<String>>,
+        embedding: impl Fn(usize) -> Option<&'e [f32]>,
+        transform: ScoreTransform,
+        require_embeddings: bool,
+        limits: &Limits,
+    ) -> Result<Self, ValidationError> {
+        let n = ids.len();
+        let any_embedding = (0..n).any(|i| embedding(i).is_some());
+        let dim = match (n > 0).then(|| embedding(0)) {
             Some(Some(e)) => e.len(),
             Some(None) if any_embedding || require_embeddings => {
                 let reason = if require_embeddings {
@@ -453,9 +521,9 @@ impl RerankInput {
         // Duplicate ids first, borrowing the ids, so no id string is copied.
         {
             let mut first_index: HashMap<&str, usize> = HashMap::with_capacity(n);
-            for (index, c) in candidates.iter().enumerate() {
-                if c.id.len() > MAX_LABEL_BYTES {
-                    let got = c.id.len();
+            for (index, id) in ids.iter().enumerate() {
+                if id.len() > MAX_LABEL_BYTES {
+                    let got = id.len();
                     return Err(ValidationError::TooLong {
                         index,
                         field: Field::Id,
@@ -463,14 +531,13 @@ impl RerankInput {
                         max: MAX_LABEL_BYTES,
                     });
                 }
-                if let Some(&first) = first_index.get(c.id.as_str()) {
-                    return Err(ValidationError::DuplicateId { id: c.id.clone(), first, index });
+                if let Some(&first) = first_index.get(id.as_str()) {
+                    return Err(ValidationError::DuplicateId { id: id.clone(), first, index });
                 }
-                first_index.insert(&c.id, index);
+                first_index.insert(id, index);
             }
         }
 
-        let mut ids = Vec::with_capacity(n);
         let mut scores = Vec::with_capacity(n);
         let mut groups = Vec::with_capacity(n);
         let mut group_names: Vec<Option<String>> = Vec::new();
@@ -478,11 +545,12 @@ impl RerankInput {
         let mut sent_negative_zero = Vec::new();
         let mut data = Vec::with_capacity(if any_embedding { n * dim } else { 0 });
 
-        for (index, c) in candidates.into_iter().enumerate() {
-            if !c.score.is_finite() {
+        for (index, category) in categories.into_iter().enumerate() {
+            let score = sent_scores[index];
+            if !score.is_finite() {
                 return Err(ValidationError::NonFinite { index, field: Field::Score });
             }
-            if let Some(got) = c.category.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
+            if let Some(got) = category.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
                 return Err(ValidationError::TooLong {
                     index,
                     field: Field::Category,
@@ -490,7 +558,7 @@ impl RerankInput {
                     max: MAX_LABEL_BYTES,
                 });
             }
-            match (any_embedding, c.embedding) {
+            match (any_embedding, embedding(index)) {
                 (false, _) => {}
                 (true, None) => {
                     return Err(ValidationError::MissingEmbedding {
@@ -506,25 +574,24 @@ impl RerankInput {
                             expected: dim,
                         });
                     }
-                    push_unit_row(&e, index, &mut data)?;
+                    push_unit_row(e, index, &mut data)?;
                 }
             }
-            let group = match group_of.get(&c.category) {
+            let group = match group_of.get(&category) {
                 Some(&g) => g,
                 None => {
                     let g = u32::try_from(group_names.len()).unwrap_or(u32::MAX);
-                    group_names.push(c.category.clone());
-                    group_of.insert(c.category, g);
+                    group_names.push(category.clone());
+                    group_of.insert(category, g);
                     g
                 }
             };
             groups.push(group);
-            if c.score == 0.0 && c.score.is_sign_negative() {
+            if score == 0.0 && score.is_sign_negative() {
                 sent_negative_zero.push(index);
             }
             // `-0.0` equals `0.0`; stored as `0.0` so every ordering sees one value.
-            scores.push(c.score + 0.0);
-            ids.push(c.id);
+            scores.push(score + 0.0);
         }
 
         let normalized = normalize_scores(&scores, transform);

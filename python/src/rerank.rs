@@ -12,7 +12,7 @@ use std::collections::BTreeMap;
 
 use medley_core::diversify;
 use medley_core::measures as m;
-use medley_core::model::{CandidateInput, Limits, Params, RerankInput, ScoreTransform, MAX_LABEL_BYTES};
+use medley_core::model::{Limits, Params, RerankInput, ScoreTransform, MAX_LABEL_BYTES};
 use medley_core::Workspace;
 use numpy::{PyArray1, PyReadonlyArray1, PyReadonlyArray2, PyUntypedArrayMethods};
 use pyo3::prelude::*;
@@ -180,22 +180,23 @@ fn build_input(
     needs_embeddings: bool,
 ) -> PyResult<RerankInput> {
     let have_embeddings = rows.is_some();
-    let mut categories = categories.map(Vec::into_iter);
-    let candidates: Vec<CandidateInput> = scores
-        .iter()
-        .enumerate()
-        .map(|(i, &score)| CandidateInput {
-            id: i.to_string(),
-            score,
-            category: categories.as_mut().and_then(Iterator::next).flatten(),
-            embedding: rows.as_ref().map(|(rows, d)| match rows {
-                Rows::F32(x) => x[i * d..(i + 1) * d].to_vec(),
-                Rows::F64(x) => x[i * d..(i + 1) * d].iter().map(|&v| v as f32).collect(),
-            }),
-        })
-        .collect();
+    let n = scores.len();
+    let ids: Vec<String> = (0..n).map(|i| i.to_string()).collect();
+    let categories = categories.unwrap_or_else(|| vec![None; n]);
+    // float64 rows are rounded to f32 once, as the JSON wire rounds each value it parses.
+    let rounded: Vec<f32>;
+    let matrix = match rows {
+        None => None,
+        Some((Rows::F32(x), d)) => Some((x, d)),
+        Some((Rows::F64(x), d)) => {
+            rounded = x.iter().map(|&v| v as f32).collect();
+            Some((rounded.as_slice(), d))
+        }
+    };
     let invalid = |e: medley_core::ValidationError| error::invalid(&e, have_embeddings);
-    let mut input = RerankInput::new(candidates, transform, needs_embeddings, &LIMITS).map_err(invalid)?;
+    let mut input =
+        RerankInput::from_columns(ids, scores, categories, matrix, transform, needs_embeddings, &LIMITS)
+            .map_err(invalid)?;
     if let Some(weights) = profile {
         input = input.with_profile(weights).map_err(invalid)?;
     }
