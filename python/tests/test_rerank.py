@@ -245,3 +245,10 @@ def test_the_gil_is_released_while_the_kernel_runs():
     watcher.join()
     # Thousands of loop steps in the tens of milliseconds the kernel runs (millions, usually).
     assert steps_during[0] > 1000, steps_during
+
+
+def test_the_package_docstring_example_runs():
+    import doctest
+
+    result = doctest.testmod(medley)
+    assert result.attempted >= 4 and result.failed == 0
