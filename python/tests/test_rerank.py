@@ -198,9 +198,8 @@ def test_every_error_code_with_its_path():
 
 def test_the_gil_is_released_while_the_kernel_runs():
     """Two threads re-ranking two large slates take less than 1.6x one slate's time (2 cores;
-    with the GIL held they would take 2x). Best of five, to ride out a noisy neighbour. And,
-    independent of timing, a pure-Python thread keeps running while a kernel runs: with the GIL
-    held through the call it could not take a step until the call returned."""
+    with the GIL held they would take 2x). Best of five, to ride out a noisy neighbour. And a
+    Python thread keeps stepping while a kernel runs (below)."""
     rng = np.random.default_rng(3)
     n, d, k = 8000, 128, 300
     scores, emb = rng.random(n), rng.normal(size=(n, d)).astype(np.float32)
@@ -223,28 +222,36 @@ def test_the_gil_is_released_while_the_kernel_runs():
         double.append(time.perf_counter() - t)
     assert min(double) < 1.6 * min(single), (single, double)
 
-    inside = threading.Event()
-    steps_during = []
+    # A pure-Python thread already stepping when the kernel starts keeps stepping through it:
+    # with the GIL held through the call its longest pause would be the whole call (measured
+    # at 0.85-0.87 of it with the release removed); released, it is scheduling noise.
+    def long_call():
+        medley.rerank(scores, emb, algorithm="dpp", lam=0.5, k=1000)
 
-    def counter():
-        inside.wait()
-        count = 0
-        while worker.is_alive():
-            count += 1
-        steps_during.append(count)
+    t = time.perf_counter()
+    long_call()
+    call = time.perf_counter() - t
+    counting, done, pauses = threading.Event(), threading.Event(), []
 
-    def kernel():
-        inside.set()
-        one()
+    def stepper():
+        last, worst = time.perf_counter(), 0.0
+        counting.set()
+        while not done.is_set():
+            now = time.perf_counter()
+            worst, last = max(worst, now - last), now
+        pauses.append(worst)
 
-    worker = threading.Thread(target=kernel)
-    watcher = threading.Thread(target=counter)
-    watcher.start()
-    worker.start()
-    worker.join()
-    watcher.join()
-    # Thousands of loop steps in the tens of milliseconds the kernel runs (millions, usually).
-    assert steps_during[0] > 1000, steps_during
+    def caller():
+        counting.wait()
+        long_call()
+        done.set()
+
+    threads = [threading.Thread(target=stepper), threading.Thread(target=caller)]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    assert pauses[0] < 0.5 * call, (pauses, call)
 
 
 def test_the_package_docstring_example_runs():
