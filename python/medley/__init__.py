@@ -12,6 +12,11 @@ across partitions (``medley.spark.replay`` runs it on Apache Spark).
 [0, 3]
 """
 
+# `medley` is also the first part of the gRPC contract's proto package (`medley.v1`): code that
+# protoc generates from proto/medley/v1/reranker.proto lands in a `medley/v1/` folder elsewhere
+# on sys.path. Extending this package's path lets both be imported in one interpreter.
+__path__ = __import__("pkgutil").extend_path(__path__, __name__)
+
 from ._native import REPORT_COLUMNS, Replay, RerankError, algorithms, measures, rerank
 
 __all__ = ["rerank", "measures", "algorithms", "Replay", "RerankError", "REPORT_COLUMNS"]
