@@ -50,8 +50,9 @@ def replay(
     a Spark DataFrame whose rows follow the replay schema.
 
     One ``Replay`` per partition, fed its Arrow batches; each partition returns its state as
-    one binary row; the driver merges the states in partition order (any order gives the same
-    table to rounding) and reads the table off the merged accumulator. What reading counted
+    one binary row; the states are merged in a tree on the executors (``treeReduce``, depth 2;
+    any order gives the same table to rounding) and the driver reads the table off the one
+    merged accumulator it receives. What reading counted
     (rows, slates, rows without clicks, invalid rows) is in the table's ``attrs["stats"]``.
     """
     algorithms = list(algorithms)
@@ -66,10 +67,16 @@ def replay(
             acc.update(batch)
         yield pa.RecordBatch.from_pydict({"state": [acc.to_bytes()]}, schema=pa.schema([("state", pa.binary())]))
 
-    states = df.mapInArrow(per_partition, _STATE_SCHEMA).collect()
-    merged = Replay(algorithms, lambdas, k, windows, seed)
-    for row in states:
-        merged.merge(Replay.from_bytes(bytes(row["state"])))
+    def combine(a: bytes, b: bytes) -> bytes:
+        left = Replay.from_bytes(a)
+        left.merge(Replay.from_bytes(b))
+        return left.to_bytes()
+
+    states = df.mapInArrow(per_partition, _STATE_SCHEMA).rdd.map(lambda row: bytes(row[0]))
+    if states.getNumPartitions() == 0:
+        return Replay(algorithms, lambdas, k, windows, seed).table()
+    # Merged in a tree on the executors: the driver receives one state, not one per partition.
+    merged = Replay.from_bytes(states.treeReduce(combine, depth=2))
     return merged.table()
 
 
