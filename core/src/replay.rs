@@ -770,4 +770,43 @@ mod tests {
         // top 10 reweighted, finite and present on every slate.
         assert!(a[0].ips_clicks.is_some_and(f64::is_finite));
     }
+
+    /// Two partitions that numbered the same items differently merge, through their written
+    /// states, into the points of one pass (exposure mapped by item, sums to rounding); a state
+    /// cut short or of another grid is refused.
+    #[test]
+    fn partitions_merge_by_item_through_their_states() {
+        let dpp = diversify::by_name("dpp").unwrap();
+        let cells = [Cell { algorithm: dpp, window: Some(3), lambda: 0.6 }];
+        let mut slates: Vec<LoggedSlate> = (0..30).map(slate).collect();
+        let mut ws = Workspace::new();
+        let mut one = Grid::new(&cells, GridOptions::new(10)).unwrap();
+        let rows: Vec<SlateRows> = slates.iter().map(|s| one.evaluate(s, &mut ws).unwrap()).collect();
+        one.add(&rows, 30);
+        // The second partition numbers item i as 29 - i; the map takes its numbers to the first's.
+        for s in &mut slates[12..] {
+            s.item = (0..30).rev().collect();
+        }
+        let mut a = Grid::new(&cells, GridOptions::new(10)).unwrap();
+        let mut b = Grid::new(&cells, GridOptions::new(10)).unwrap();
+        let ra: Vec<SlateRows> = slates[..12].iter().map(|s| a.evaluate(s, &mut ws).unwrap()).collect();
+        let rb: Vec<SlateRows> = slates[12..].iter().map(|s| b.evaluate(s, &mut ws).unwrap()).collect();
+        a.add(&ra, 30);
+        b.add(&rb, 30);
+        let mut bytes = Vec::new();
+        b.write_state(&mut bytes);
+        let mut restored = Grid::new(&cells, GridOptions::new(10)).unwrap();
+        restored.read_state(&mut StateReader::new(&bytes)).unwrap();
+        let map: Vec<u32> = (0..30).rev().collect();
+        a.merge(&restored, &map, 30).unwrap();
+        for (p, q) in one.points().iter().zip(&a.points()) {
+            assert!((p.ndcg - q.ndcg).abs() < 1e-12 && (p.ndcg_lo - q.ndcg_lo).abs() < 1e-12);
+            assert!((p.entropy_hi - q.entropy_hi).abs() < 1e-12);
+            assert_eq!((p.gini.to_bits(), p.coverage.to_bits()), (q.gini.to_bits(), q.coverage.to_bits()));
+        }
+        let mut fresh = Grid::new(&cells, GridOptions::new(10)).unwrap();
+        assert!(fresh.read_state(&mut StateReader::new(&bytes[..bytes.len() - 1])).is_err());
+        let other = Grid::new(&[cells[0], cells[0]], GridOptions::new(10)).unwrap();
+        assert!(fresh.merge(&other, &[], 0).is_err());
+    }
 }
