@@ -162,8 +162,7 @@ impl Replay {
                             ),
                         ));
                     }
-                    let ids: Vec<String> = slate.input.ids().to_vec();
-                    slate.item = ids.iter().map(|id| self.intern(id)).collect();
+                    slate.item = slate.input.ids().iter().map(|id| self.intern(id)).collect();
                     self.stats.slates += 1;
                     self.stats.with_served += u64::from(slate.served_rank.is_some());
                     pending.push(slate);
