@@ -8,11 +8,13 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let fds = protox::compile([proto], ["proto"])?;
     let out = std::path::PathBuf::from(std::env::var("OUT_DIR")?);
     std::fs::write(out.join("medley_descriptor.bin"), prost::Message::encode_to_vec(&fds))?;
-    // Messages decode from one contiguous slice (src/grpc/codec.rs says why).
+    // Messages decode from one contiguous slice (src/grpc/codec.rs says why), and `Candidate` is
+    // hand-written so that its packed embedding is read in one step (src/grpc/candidate.rs).
     tonic_prost_build::configure()
         .build_client(true)
         .build_server(true)
         .codec_path("crate::grpc::codec::SliceCodec")
+        .extern_path(".medley.v1.Candidate", "crate::grpc::candidate::Candidate")
         .compile_fds(fds)?;
     Ok(())
 }

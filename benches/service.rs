@@ -1,6 +1,7 @@
 //! Service-path benchmarks: decoding one (500, 64) request with JSON-array embeddings vs
-//! `embedding_b64`, validating it into a slate, and the cost of handing a job to the kernel pool
-//! versus running it inline (which sets `pool::INLINE_WORK_BELOW`).
+//! `embedding_b64`, and as a protobuf message (our `Candidate` beside prost's derived one),
+//! validating it into a slate, and the cost of handing a job to the kernel pool versus running it
+//! inline (which sets `pool::INLINE_WORK_BELOW`).
 //!
 //! Run: `cargo bench --bench service`
 
@@ -12,9 +13,11 @@ use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use medley::api::wire::{decode_request, encode_b64_embedding, RerankRequest};
+use medley::grpc::proto;
 use medley::serve::config::Config;
 use medley::serve::engine::Engine;
 use medley::serve::pool::Pool;
+use prost::Message;
 use serde_json::json;
 
 /// One request body of `n` candidates in dimension `d`, embeddings as JSON arrays or base64.
@@ -64,6 +67,67 @@ fn decode(c: &mut Criterion) {
     group.finish();
 }
 
+/// `medley.v1.Candidate` as prost's derive (what the code generator writes) reads it: the
+/// previous decoder of a gRPC request, measured beside ours in the same run.
+#[derive(Clone, PartialEq, prost::Message)]
+struct DerivedCandidate {
+    #[prost(string, tag = "1")]
+    id: String,
+    #[prost(double, tag = "2")]
+    score: f64,
+    #[prost(string, optional, tag = "3")]
+    category: Option<String>,
+    #[prost(float, repeated, tag = "4")]
+    embedding: Vec<f32>,
+    #[prost(string, optional, tag = "5")]
+    group: Option<String>,
+}
+
+/// The fields of `medley.v1.RerankRequest` this message sets, over [`DerivedCandidate`].
+#[derive(Clone, PartialEq, prost::Message)]
+struct DerivedRequest {
+    #[prost(string, optional, tag = "3")]
+    algorithm: Option<String>,
+    #[prost(uint32, optional, tag = "5")]
+    k: Option<u32>,
+    #[prost(double, optional, tag = "6")]
+    lambda: Option<f64>,
+    #[prost(message, repeated, tag = "7")]
+    candidates: Vec<DerivedCandidate>,
+}
+
+fn grpc_decode(c: &mut Criterion) {
+    let json = decode_request(&body(500, 64, false)).unwrap();
+    let message = proto::RerankRequest {
+        algorithm: json.algorithm.clone(),
+        k: json.k.map(|k| k as u32),
+        lambda: json.lambda,
+        candidates: json
+            .candidates
+            .iter()
+            .map(|c| proto::Candidate {
+                id: c.id.clone(),
+                score: c.score,
+                category: c.category.clone(),
+                embedding: c.embedding.clone().unwrap_or_default(),
+                group: None,
+            })
+            .collect(),
+        ..Default::default()
+    };
+    let bytes = message.encode_to_vec();
+    let mut group = c.benchmark_group("grpc_decode_N500_d64");
+    group.warm_up_time(Duration::from_secs(1)).measurement_time(Duration::from_secs(3)).sample_size(40);
+    group.throughput(Throughput::Bytes(bytes.len() as u64));
+    group.bench_function("medley_candidate", |b| {
+        b.iter(|| black_box(proto::RerankRequest::decode(black_box(bytes.as_slice())).unwrap()))
+    });
+    group.bench_function("prost_derived", |b| {
+        b.iter(|| black_box(DerivedRequest::decode(black_box(bytes.as_slice())).unwrap()))
+    });
+    group.finish();
+}
+
 fn handoff(c: &mut Criterion) {
     let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(1).enable_all().build().unwrap();
     let pool = Pool::new(1, 1).unwrap();
@@ -78,5 +142,5 @@ fn handoff(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, decode, handoff);
+criterion_group!(benches, decode, grpc_decode, handoff);
 criterion_main!(benches);

@@ -24,12 +24,16 @@ use crate::api::wire;
 use crate::http::{ApiError, AppState, Job};
 use crate::serve::shutdown::Shutdown;
 
+pub mod candidate;
 pub mod codec;
 
 /// The generated messages, the service trait and a client.
 #[allow(missing_docs, unreachable_pub, clippy::all, clippy::pedantic)]
 pub mod proto {
     tonic::include_proto!("medley.v1");
+
+    /// Hand-written ([`super::candidate`]), re-exported where the generated type would be.
+    pub use super::candidate::Candidate;
 
     /// The encoded `FileDescriptorSet` of `reranker.proto`, served by reflection.
     pub const DESCRIPTOR: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/medley_descriptor.bin"));
