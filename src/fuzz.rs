@@ -1,5 +1,5 @@
-//! Invariant checks driven by arbitrary bytes: the body of the `decode` cargo-fuzz target in
-//! `fuzz/` (the `diversify` target's is `medley_core::fuzz`), kept here so that `tests/fuzz_corpus.rs` replays the committed corpus through the very same
+//! Invariant checks driven by arbitrary bytes: the bodies of the `decode` and `grpc` cargo-fuzz
+//! targets in `fuzz/` (the `diversify` target's is `medley_core::fuzz`), kept here so that `tests/fuzz_corpus.rs` replays the committed corpus through the very same
 //! code on stable Rust in every `cargo test`.
 //!
 //! Each function returns normally for every input the service must handle, which is every
@@ -20,6 +20,95 @@ fn engine() -> &'static Engine {
     ENGINE.get_or_init(|| {
         Engine::new(Config::from_toml(DEFAULT_TOML).expect("the embedded config is valid"), 1)
     })
+}
+
+/// Target `grpc`: arbitrary bytes as a `medley.v1.RerankRequest` message, through our decoder
+/// (the hand-written `Candidate`, `crate::grpc::candidate`), then the validator and the kernel
+/// as a gRPC call runs them.
+///
+/// # Panics
+/// When prost's derived decoder of the same candidates refuses bytes ours accepts, or the two
+/// read different candidates; when our message does not read back from its own encoding; or on
+/// any check of [`decode_and_serve`] for the decoded request.
+pub fn grpc_decode_and_serve(bytes: &[u8]) {
+    use prost::Message;
+    let ours = crate::grpc::proto::RerankRequest::decode(bytes);
+    let derived = DerivedRequest::decode(bytes);
+    let Ok(message) = ours else { return };
+    // prost's derive skips fields it does not declare, so it may accept what ours refuses, but
+    // never the other way round.
+    let derived = derived.expect("prost's derive refuses a message ours reads");
+    let ours = |m: &crate::grpc::proto::RerankRequest| -> Vec<Key> {
+        m.candidates.iter().map(|c| key(&c.id, c.score, &c.category, &c.group, &c.embedding)).collect()
+    };
+    let theirs = |m: &DerivedRequest| -> Vec<Key> {
+        m.candidates.iter().map(|c| key(&c.id, c.score, &c.category, &c.group, &c.embedding)).collect()
+    };
+    assert_eq!(ours(&message), theirs(&derived), "the candidates prost's derive reads");
+    // Our encoding reads back to the same candidates and the same length (the profile is a hash
+    // map, so its entries may be written in another order). A score of -0.0 comes back as 0.0:
+    // proto3 leaves a field equal to its default unwritten, and prost's derive compares with
+    // `!= 0.0` too.
+    let encoded = message.encode_to_vec();
+    assert_eq!(encoded.len(), message.encoded_len(), "encoded_len");
+    let again =
+        crate::grpc::proto::RerankRequest::decode(encoded.as_slice()).expect("our encoding reads back");
+    let derived_again =
+        DerivedRequest::decode(encoded.as_slice()).expect("prost's derive reads our encoding");
+    let signless = |keys: Vec<Key>| -> Vec<Key> {
+        keys.into_iter()
+            .map(|(id, score, c, g, e)| (id, if score == (-0.0f64).to_bits() { 0 } else { score }, c, g, e))
+            .collect()
+    };
+    assert_eq!(ours(&again), signless(ours(&message)), "encode, decode");
+    assert_eq!(theirs(&derived_again), signless(ours(&message)), "encode, decode with prost's derive");
+    assert_eq!(again.encoded_len(), encoded.len(), "encode, decode, encode");
+    let (request, _) = crate::grpc::from_proto(message);
+    let prepared = match engine().prepare(request) {
+        Ok(p) => p,
+        Err(e) => {
+            assert!(!e.code().is_empty() && !e.to_string().is_empty(), "an error without a code or message");
+            return;
+        }
+    };
+    let (k, cap) = (prepared.params.k(), prepared.params.max_per_category());
+    let reranked = prepared.run(&mut Workspace::new()).expect("a validated request always runs");
+    check_selection(&reranked.prepared.input, &reranked.selection.indices, k, cap, "grpc");
+}
+
+/// A candidate's fields, floats as bits (so NaNs compare).
+type Key = (String, u64, Option<String>, Option<String>, Vec<u32>);
+
+fn key(id: &str, score: f64, category: &Option<String>, group: &Option<String>, embedding: &[f32]) -> Key {
+    (
+        id.to_owned(),
+        score.to_bits(),
+        category.clone(),
+        group.clone(),
+        embedding.iter().map(|x| x.to_bits()).collect(),
+    )
+}
+
+/// `medley.v1.Candidate` as prost's derive reads it: the reference of [`grpc_decode_and_serve`].
+#[derive(Clone, PartialEq, prost::Message)]
+struct DerivedCandidate {
+    #[prost(string, tag = "1")]
+    id: String,
+    #[prost(double, tag = "2")]
+    score: f64,
+    #[prost(string, optional, tag = "3")]
+    category: Option<String>,
+    #[prost(float, repeated, tag = "4")]
+    embedding: Vec<f32>,
+    #[prost(string, optional, tag = "5")]
+    group: Option<String>,
+}
+
+/// `medley.v1.RerankRequest`'s candidates alone, over [`DerivedCandidate`].
+#[derive(Clone, PartialEq, prost::Message)]
+struct DerivedRequest {
+    #[prost(message, repeated, tag = "7")]
+    candidates: Vec<DerivedCandidate>,
 }
 
 /// Target `decode`: arbitrary bytes through the request decoder, the validator and, when they

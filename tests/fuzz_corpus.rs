@@ -36,6 +36,11 @@ fn decode_corpus_replays_cleanly() {
 }
 
 #[test]
+fn grpc_corpus_replays_cleanly() {
+    replay("grpc", medley::fuzz::grpc_decode_and_serve);
+}
+
+#[test]
 fn diversify_corpus_replays_cleanly() {
     replay("diversify", medley::fuzz::diversifiers);
 }
@@ -50,6 +55,17 @@ fn seeded_random_inputs_keep_every_invariant() {
         let bytes: Vec<u8> = (0..len).map(|_| rng.next_u64() as u8).collect();
         medley::fuzz::diversifiers(&bytes);
         medley::fuzz::decode_and_serve(&bytes);
+        medley::fuzz::grpc_decode_and_serve(&bytes);
+    }
+    for (_, seed) in corpus("grpc") {
+        for _ in 0..50 {
+            let mut bytes = seed.clone();
+            if !bytes.is_empty() {
+                let at = rng.below(bytes.len());
+                bytes[at] = rng.next_u64() as u8;
+            }
+            medley::fuzz::grpc_decode_and_serve(&bytes);
+        }
     }
     for (_, seed) in corpus("decode") {
         for _ in 0..50 {

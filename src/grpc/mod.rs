@@ -181,7 +181,7 @@ fn code_name(code: tonic::Code) -> &'static str {
 
 /// The wire request of a proto request, and its count of embedding values. A candidate with no
 /// embedding values has none (proto3 cannot tell an empty list from an absent one).
-fn from_proto(r: proto::RerankRequest) -> (wire::RerankRequest, usize) {
+pub(crate) fn from_proto(r: proto::RerankRequest) -> (wire::RerankRequest, usize) {
     let values = r.candidates.iter().map(|c| c.embedding.len()).sum();
     let request = wire::RerankRequest {
         request_id: r.request_id,
