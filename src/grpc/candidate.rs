@@ -73,11 +73,19 @@ impl prost::Message for Candidate {
         buf: &mut impl Buf,
         ctx: DecodeContext,
     ) -> Result<(), DecodeError> {
+        // Errors name the field as prost's derive names them ("Candidate.id: ...").
+        let field = |name: &'static str| {
+            move |mut error: DecodeError| {
+                error.push("Candidate", name);
+                error
+            }
+        };
         match tag {
-            ID => encoding::string::merge(wire_type, &mut self.id, buf, ctx),
-            SCORE => encoding::double::merge(wire_type, &mut self.score, buf, ctx),
+            ID => encoding::string::merge(wire_type, &mut self.id, buf, ctx).map_err(field("id")),
+            SCORE => encoding::double::merge(wire_type, &mut self.score, buf, ctx).map_err(field("score")),
             CATEGORY => {
                 encoding::string::merge(wire_type, self.category.get_or_insert_with(String::new), buf, ctx)
+                    .map_err(field("category"))
             }
             EMBEDDING
                 if wire_type == WireType::LengthDelimited
@@ -85,8 +93,10 @@ impl prost::Message for Candidate {
             {
                 Ok(())
             }
-            EMBEDDING => encoding::float::merge_repeated(wire_type, &mut self.embedding, buf, ctx),
-            GROUP => encoding::string::merge(wire_type, self.group.get_or_insert_with(String::new), buf, ctx),
+            EMBEDDING => encoding::float::merge_repeated(wire_type, &mut self.embedding, buf, ctx)
+                .map_err(field("embedding")),
+            GROUP => encoding::string::merge(wire_type, self.group.get_or_insert_with(String::new), buf, ctx)
+                .map_err(field("group")),
             _ => encoding::skip_field(wire_type, tag, buf, ctx),
         }
     }
@@ -145,19 +155,23 @@ mod tests {
     use bytes::Buf;
     use prost::Message;
 
-    #[derive(Clone, PartialEq, prost::Message)]
-    struct Derived {
-        #[prost(string, tag = "1")]
-        id: String,
-        #[prost(double, tag = "2")]
-        score: f64,
-        #[prost(string, optional, tag = "3")]
-        category: Option<String>,
-        #[prost(float, repeated, tag = "4")]
-        embedding: Vec<f32>,
-        #[prost(string, optional, tag = "5")]
-        group: Option<String>,
+    /// Named `Candidate` as the generated struct is, so that its errors read the same.
+    mod derived {
+        #[derive(Clone, PartialEq, prost::Message)]
+        pub(super) struct Candidate {
+            #[prost(string, tag = "1")]
+            pub(super) id: String,
+            #[prost(double, tag = "2")]
+            pub(super) score: f64,
+            #[prost(string, optional, tag = "3")]
+            pub(super) category: Option<String>,
+            #[prost(float, repeated, tag = "4")]
+            pub(super) embedding: Vec<f32>,
+            #[prost(string, optional, tag = "5")]
+            pub(super) group: Option<String>,
+        }
     }
+    use derived::Candidate as Derived;
 
     /// The same fields with the embedding written unpacked (one key per value), which a proto3
     /// parser must accept.
@@ -255,10 +269,19 @@ mod tests {
         both.extend(b.encode_to_vec());
         assert_eq!(Candidate::decode(both.as_slice()).unwrap().embedding, vec![1.0, 2.0, 3.0]);
         assert_eq!(Derived::decode(both.as_slice()).unwrap().embedding, vec![1.0, 2.0, 3.0]);
-        // Key 4, wire type 2, length 6: not whole values; and a length past the end.
-        for bad in [vec![0x22, 6, 0, 0, 128, 63, 0, 0], vec![0x22, 12, 0, 0, 128, 63]] {
-            assert!(Candidate::decode(bad.as_slice()).is_err(), "{bad:?}");
-            assert!(Derived::decode(bad.as_slice()).is_err(), "{bad:?}");
+        // Key 4, wire type 2, length 6: not whole values; a length past the end; a truncated
+        // length; an id (key 1) that is not UTF-8; a score (key 2) with a string's wire type.
+        // Refused with the derive's own message, which names the field.
+        for bad in [
+            vec![0x22, 6, 0, 0, 128, 63, 0, 0],
+            vec![0x22, 12, 0, 0, 128, 63],
+            vec![0x22, 0x80],
+            vec![0x0a, 2, 0xff, 0xfe],
+            vec![0x12, 1, 0],
+        ] {
+            let ours = Candidate::decode(bad.as_slice()).expect_err("refused");
+            let theirs = Derived::decode(bad.as_slice()).expect_err("refused");
+            assert_eq!(ours.to_string(), theirs.to_string(), "{bad:?}");
         }
     }
 }
