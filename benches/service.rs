@@ -13,6 +13,7 @@ use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use medley::api::wire::{decode_request, encode_b64_embedding, RerankRequest};
+use medley::grpc::candidate::reference::RerankRequest as DerivedRequest;
 use medley::grpc::proto;
 use medley::serve::config::Config;
 use medley::serve::engine::Engine;
@@ -65,35 +66,6 @@ fn decode(c: &mut Criterion) {
         });
     }
     group.finish();
-}
-
-/// `medley.v1.Candidate` as prost's derive (what the code generator writes) reads it: the
-/// previous decoder of a gRPC request, measured beside ours in the same run.
-#[derive(Clone, PartialEq, prost::Message)]
-struct DerivedCandidate {
-    #[prost(string, tag = "1")]
-    id: String,
-    #[prost(double, tag = "2")]
-    score: f64,
-    #[prost(string, optional, tag = "3")]
-    category: Option<String>,
-    #[prost(float, repeated, tag = "4")]
-    embedding: Vec<f32>,
-    #[prost(string, optional, tag = "5")]
-    group: Option<String>,
-}
-
-/// The fields of `medley.v1.RerankRequest` this message sets, over [`DerivedCandidate`].
-#[derive(Clone, PartialEq, prost::Message)]
-struct DerivedRequest {
-    #[prost(string, optional, tag = "3")]
-    algorithm: Option<String>,
-    #[prost(uint32, optional, tag = "5")]
-    k: Option<u32>,
-    #[prost(double, optional, tag = "6")]
-    lambda: Option<f64>,
-    #[prost(message, repeated, tag = "7")]
-    candidates: Vec<DerivedCandidate>,
 }
 
 fn grpc_decode(c: &mut Criterion) {

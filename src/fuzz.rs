@@ -31,6 +31,7 @@ fn engine() -> &'static Engine {
 /// read different candidates; when our message does not read back from its own encoding; or on
 /// any check of [`decode_and_serve`] for the decoded request.
 pub fn grpc_decode_and_serve(bytes: &[u8]) {
+    use crate::grpc::candidate::reference::RerankRequest as DerivedRequest;
     use prost::Message;
     let ours = crate::grpc::proto::RerankRequest::decode(bytes);
     let derived = DerivedRequest::decode(bytes);
@@ -74,6 +75,11 @@ pub fn grpc_decode_and_serve(bytes: &[u8]) {
     let (k, cap) = (prepared.params.k(), prepared.params.max_per_category());
     let reranked = prepared.run(&mut Workspace::new()).expect("a validated request always runs");
     check_selection(&reranked.prepared.input, &reranked.selection.indices, k, cap, "grpc");
+    assert_eq!(
+        reranked.selection.indices.len(),
+        expected_len(&reranked.prepared.input, k, cap),
+        "slate length"
+    );
 }
 
 /// A candidate's fields, floats as bits (so NaNs compare).
@@ -87,28 +93,6 @@ fn key(id: &str, score: f64, category: &Option<String>, group: &Option<String>, 
         group.clone(),
         embedding.iter().map(|x| x.to_bits()).collect(),
     )
-}
-
-/// `medley.v1.Candidate` as prost's derive reads it: the reference of [`grpc_decode_and_serve`].
-#[derive(Clone, PartialEq, prost::Message)]
-struct DerivedCandidate {
-    #[prost(string, tag = "1")]
-    id: String,
-    #[prost(double, tag = "2")]
-    score: f64,
-    #[prost(string, optional, tag = "3")]
-    category: Option<String>,
-    #[prost(float, repeated, tag = "4")]
-    embedding: Vec<f32>,
-    #[prost(string, optional, tag = "5")]
-    group: Option<String>,
-}
-
-/// `medley.v1.RerankRequest`'s candidates alone, over [`DerivedCandidate`].
-#[derive(Clone, PartialEq, prost::Message)]
-struct DerivedRequest {
-    #[prost(message, repeated, tag = "7")]
-    candidates: Vec<DerivedCandidate>,
 }
 
 /// Target `decode`: arbitrary bytes through the request decoder, the validator and, when they

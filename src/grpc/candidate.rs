@@ -146,6 +146,40 @@ fn merge_packed_floats(values: &mut Vec<f32>, buf: &mut impl Buf) -> bool {
     true
 }
 
+/// prost's derive of the same fields (the form the code generator writes), the reference our
+/// [`Candidate`] is checked against: by its unit tests, the `grpc` fuzz target
+/// ([`crate::fuzz::grpc_decode_and_serve`]) and the `grpc_decode` bench.
+pub mod reference {
+    /// `medley.v1.Candidate` as prost's derive reads and writes it; named as the generated
+    /// struct is, so that its decode errors read the same ("Candidate.id: ...").
+    #[derive(Clone, PartialEq, prost::Message)]
+    pub struct Candidate {
+        /// `string id = 1`.
+        #[prost(string, tag = "1")]
+        pub id: String,
+        /// `double score = 2`.
+        #[prost(double, tag = "2")]
+        pub score: f64,
+        /// `optional string category = 3`.
+        #[prost(string, optional, tag = "3")]
+        pub category: Option<String>,
+        /// `repeated float embedding = 4` (packed).
+        #[prost(float, repeated, tag = "4")]
+        pub embedding: Vec<f32>,
+        /// `optional string group = 5`.
+        #[prost(string, optional, tag = "5")]
+        pub group: Option<String>,
+    }
+
+    /// `medley.v1.RerankRequest`'s candidates alone (its other fields are skipped as unknown).
+    #[derive(Clone, PartialEq, prost::Message)]
+    pub struct RerankRequest {
+        /// `repeated Candidate candidates = 7`.
+        #[prost(message, repeated, tag = "7")]
+        pub candidates: Vec<Candidate>,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     //! The reference is prost's derive (prost-derive, the code generator's own output form) on a
@@ -155,23 +189,7 @@ mod tests {
     use bytes::Buf;
     use prost::Message;
 
-    /// Named `Candidate` as the generated struct is, so that its errors read the same.
-    mod derived {
-        #[derive(Clone, PartialEq, prost::Message)]
-        pub(super) struct Candidate {
-            #[prost(string, tag = "1")]
-            pub(super) id: String,
-            #[prost(double, tag = "2")]
-            pub(super) score: f64,
-            #[prost(string, optional, tag = "3")]
-            pub(super) category: Option<String>,
-            #[prost(float, repeated, tag = "4")]
-            pub(super) embedding: Vec<f32>,
-            #[prost(string, optional, tag = "5")]
-            pub(super) group: Option<String>,
-        }
-    }
-    use derived::Candidate as Derived;
+    use super::reference::Candidate as Derived;
 
     /// The same fields with the embedding written unpacked (one key per value), which a proto3
     /// parser must accept.
