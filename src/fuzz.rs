@@ -65,21 +65,7 @@ pub fn grpc_decode_and_serve(bytes: &[u8]) {
     assert_eq!(theirs(&derived_again), signless(ours(&message)), "encode, decode with prost's derive");
     assert_eq!(again.encoded_len(), encoded.len(), "encode, decode, encode");
     let (request, _) = crate::grpc::from_proto(message);
-    let prepared = match engine().prepare(request) {
-        Ok(p) => p,
-        Err(e) => {
-            assert!(!e.code().is_empty() && !e.to_string().is_empty(), "an error without a code or message");
-            return;
-        }
-    };
-    let (k, cap) = (prepared.params.k(), prepared.params.max_per_category());
-    let reranked = prepared.run(&mut Workspace::new()).expect("a validated request always runs");
-    check_selection(&reranked.prepared.input, &reranked.selection.indices, k, cap, "grpc");
-    assert_eq!(
-        reranked.selection.indices.len(),
-        expected_len(&reranked.prepared.input, k, cap),
-        "slate length"
-    );
+    serve_checked(engine().prepare(request), "grpc");
 }
 
 /// A candidate's fields, floats as bits (so NaNs compare).
@@ -103,7 +89,14 @@ fn key(id: &str, score: f64, category: &Option<String>, group: &Option<String>, 
 /// that is not a duplicate-free list of `min(k, N)` (fewer only under a category cap) valid
 /// indices, or a response that does not encode.
 pub fn decode_and_serve(bytes: &[u8]) {
-    let prepared = match crate::api::wire::decode_request(bytes).and_then(|r| engine().prepare(r)) {
+    serve_checked(crate::api::wire::decode_request(bytes).and_then(|r| engine().prepare(r)), "decode");
+}
+
+/// The checks both request targets share: a refusal carries a code and a message; an accepted
+/// request yields a duplicate-free list of `min(k, N)` valid indices (fewer only under a
+/// category cap) and a response that encodes.
+fn serve_checked(prepared: Result<crate::serve::engine::Prepared, crate::api::RequestError>, target: &str) {
+    let prepared = match prepared {
         Ok(p) => p,
         Err(e) => {
             assert!(!e.code().is_empty() && !e.to_string().is_empty(), "an error without a code or message");
@@ -112,7 +105,7 @@ pub fn decode_and_serve(bytes: &[u8]) {
     };
     let (n, k, cap) = (prepared.input.len(), prepared.params.k(), prepared.params.max_per_category());
     let reranked = prepared.run(&mut Workspace::new()).expect("a validated request always runs");
-    check_selection(&reranked.prepared.input, &reranked.selection.indices, k, cap, "decode");
+    check_selection(&reranked.prepared.input, &reranked.selection.indices, k, cap, target);
     assert_eq!(
         reranked.selection.indices.len(),
         expected_len(&reranked.prepared.input, k, cap),

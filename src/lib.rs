@@ -47,3 +47,19 @@ pub use medley_core::{
     CandidateInput, Diversifier, KernelError, Limits, Params, RerankInput, ScoreTransform, Selection,
     ValidationError, Workspace,
 };
+
+/// Helpers shared by the unit tests.
+#[cfg(test)]
+pub(crate) mod testing {
+    /// xorshift64 (Marsaglia, "Xorshift RNGs", 2003), for reproducible random numbers.
+    pub(crate) struct Rng(pub(crate) u64);
+
+    impl Rng {
+        pub(crate) fn next(&mut self) -> u64 {
+            self.0 ^= self.0 << 13;
+            self.0 ^= self.0 >> 7;
+            self.0 ^= self.0 << 17;
+            self.0
+        }
+    }
+}

@@ -479,17 +479,7 @@ pub fn encode_b64_embedding(values: &[f32]) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    /// xorshift64, for reproducible random numbers.
-    struct Rng(u64);
-    impl Rng {
-        fn next(&mut self) -> u64 {
-            self.0 ^= self.0 << 13;
-            self.0 ^= self.0 >> 7;
-            self.0 ^= self.0 << 17;
-            self.0
-        }
-    }
+    use crate::testing::Rng;
 
     /// A request whose first candidate's embedding is the given texts, verbatim.
     fn request_with(values: &[String], score: &str) -> Vec<u8> {

@@ -186,6 +186,7 @@ mod tests {
     //! struct with the same field numbers: our encoding must equal its bytes, and its bytes in
     //! every wire form must decode to the same values.
     use super::Candidate;
+    use crate::testing::Rng;
     use bytes::Buf;
     use prost::Message;
 
@@ -208,17 +209,6 @@ mod tests {
         /// A field this version does not know, to be skipped.
         #[prost(uint64, tag = "99")]
         unknown: u64,
-    }
-
-    struct Rng(u64);
-
-    impl Rng {
-        fn next(&mut self) -> u64 {
-            self.0 ^= self.0 << 13;
-            self.0 ^= self.0 >> 7;
-            self.0 ^= self.0 << 17;
-            self.0
-        }
     }
 
     fn random(rng: &mut Rng) -> Derived {
