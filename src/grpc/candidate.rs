@@ -147,8 +147,8 @@ fn merge_packed_floats(values: &mut Vec<f32>, buf: &mut impl Buf) -> bool {
 }
 
 /// prost's derive of the same fields (the form the code generator writes), the reference our
-/// [`Candidate`] is checked against: by its unit tests, the `grpc` fuzz target
-/// ([`crate::fuzz::grpc_decode_and_serve`]) and the `grpc_decode` bench.
+/// [`Candidate`] is checked against: by its unit tests, the `grpc` fuzz target and the
+/// `grpc_decode` bench.
 pub mod reference {
     /// `medley.v1.Candidate` as prost's derive reads and writes it; named as the generated
     /// struct is, so that its decode errors read the same ("Candidate.id: ...").
