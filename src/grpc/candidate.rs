@@ -1,6 +1,6 @@
 //! `medley.v1.Candidate` with a hand-written [`prost::Message`]: the generated code (build.rs maps
 //! the proto type here with `extern_path`) would read a packed `repeated float embedding` one
-//! value at a time, each a `Vec::push` that grows the vector from empty, five reallocations for
+//! value at a time, each a `Vec::push` that grows the vector from empty, five allocations for
 //! 64 values. Here a packed run is taken in one step: the vector is sized from the run's length
 //! and filled from the bytes (`f32::from_le_bytes` over 4-byte chunks, which compiles to a copy on
 //! little-endian machines). Every other field, and every other wire form, goes through prost's
