@@ -2,8 +2,8 @@
 //! the proto type here with `extern_path`) would read a packed `repeated float embedding` one
 //! value at a time, each a `Vec::push` that grows the vector from empty, five allocations for
 //! 64 values. Here a packed run is taken in one step: the vector is sized from the run's length
-//! and filled from the bytes (`f32::from_le_bytes` over 4-byte chunks, which compiles to a copy on
-//! little-endian machines). Every other field, and every other wire form, goes through prost's
+//! and filled from the bytes (`f32::from_le_bytes` over 4-byte chunks, a loop with no branch per
+//! value). Every other field, and every other wire form, goes through prost's
 //! own encoding functions, so the wire format is the generated code's exactly.
 //!
 //! Protobuf's rules for a `repeated float` field (protobuf.dev, "Encoding", packed repeated
