@@ -31,14 +31,12 @@ fn engine() -> &'static Engine {
 /// read different candidates; when our message does not read back from its own encoding; or on
 /// any check of [`decode_and_serve`] for the decoded request.
 pub fn grpc_decode_and_serve(bytes: &[u8]) {
-    use crate::grpc::candidate::reference::RerankRequest as DerivedRequest;
+    use crate::grpc::candidate::reference::{key, Key, RerankRequest as DerivedRequest};
     use prost::Message;
-    let ours = crate::grpc::proto::RerankRequest::decode(bytes);
-    let derived = DerivedRequest::decode(bytes);
-    let Ok(message) = ours else { return };
+    let Ok(message) = crate::grpc::proto::RerankRequest::decode(bytes) else { return };
     // prost's derive skips fields it does not declare, so it may accept what ours refuses, but
     // never the other way round.
-    let derived = derived.expect("prost's derive refuses a message ours reads");
+    let derived = DerivedRequest::decode(bytes).expect("prost's derive refuses a message ours reads");
     let ours = |m: &crate::grpc::proto::RerankRequest| -> Vec<Key> {
         m.candidates.iter().map(|c| key(&c.id, c.score, &c.category, &c.group, &c.embedding)).collect()
     };
@@ -66,19 +64,6 @@ pub fn grpc_decode_and_serve(bytes: &[u8]) {
     assert_eq!(again.encoded_len(), encoded.len(), "encode, decode, encode");
     let (request, _) = crate::grpc::from_proto(message);
     serve_checked(engine().prepare(request), "grpc");
-}
-
-/// A candidate's fields, floats as bits (so NaNs compare).
-type Key = (String, u64, Option<String>, Option<String>, Vec<u32>);
-
-fn key(id: &str, score: f64, category: &Option<String>, group: &Option<String>, embedding: &[f32]) -> Key {
-    (
-        id.to_owned(),
-        score.to_bits(),
-        category.clone(),
-        group.clone(),
-        embedding.iter().map(|x| x.to_bits()).collect(),
-    )
 }
 
 /// Target `decode`: arbitrary bytes through the request decoder, the validator and, when they

@@ -120,9 +120,10 @@ impl prost::Message for Candidate {
 /// buffer, or not a whole number of values); the caller then hands it to prost's own reader,
 /// which reads it the generated code's way or returns the generated code's error.
 fn merge_packed_floats(values: &mut Vec<f32>, buf: &mut impl Buf) -> bool {
-    let mut peek = buf.chunk();
+    let first = buf.chunk();
+    let mut peek = first;
     let Ok(len) = encoding::decode_varint(&mut peek) else { return false };
-    let header = buf.chunk().len() - peek.len();
+    let header = first.len() - peek.len();
     let Ok(len) = usize::try_from(len) else { return false };
     if len % 4 != 0 || header.saturating_add(len) > buf.remaining() {
         return false;
@@ -171,6 +172,28 @@ pub mod reference {
         pub group: Option<String>,
     }
 
+    /// A candidate's fields with its floats as bits, so that two readings compare exactly (NaNs
+    /// included).
+    pub type Key = (String, u64, Option<String>, Option<String>, Vec<u32>);
+
+    /// The [`Key`] of a candidate's fields, whichever struct holds them.
+    #[must_use]
+    pub fn key(
+        id: &str,
+        score: f64,
+        category: &Option<String>,
+        group: &Option<String>,
+        embedding: &[f32],
+    ) -> Key {
+        (
+            id.to_owned(),
+            score.to_bits(),
+            category.clone(),
+            group.clone(),
+            embedding.iter().map(|x| x.to_bits()).collect(),
+        )
+    }
+
     /// `medley.v1.RerankRequest`'s candidates alone (its other fields are skipped as unknown).
     #[derive(Clone, PartialEq, prost::Message)]
     pub struct RerankRequest {
@@ -190,7 +213,7 @@ mod tests {
     use bytes::Buf;
     use prost::Message;
 
-    use super::reference::Candidate as Derived;
+    use super::reference::{key, Candidate as Derived};
 
     /// The same fields with the embedding written unpacked (one key per value), which a proto3
     /// parser must accept.
@@ -226,16 +249,11 @@ mod tests {
         }
     }
 
-    fn bits(v: &[f32]) -> Vec<u32> {
-        v.iter().map(|x| x.to_bits()).collect()
-    }
-
     fn same(ours: &Candidate, derived: &Derived) {
-        assert_eq!(ours.id, derived.id);
-        assert_eq!(ours.score.to_bits(), derived.score.to_bits());
-        assert_eq!(ours.category, derived.category);
-        assert_eq!(bits(&ours.embedding), bits(&derived.embedding));
-        assert_eq!(ours.group, derived.group);
+        assert_eq!(
+            key(&ours.id, ours.score, &ours.category, &ours.group, &ours.embedding),
+            key(&derived.id, derived.score, &derived.category, &derived.group, &derived.embedding)
+        );
     }
 
     #[test]
