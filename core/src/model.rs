@@ -9,6 +9,12 @@
 
 use std::collections::HashMap;
 
+/// The hasher of the per-request maps keyed by caller-sent strings: foldhash, seeded at random
+/// per process and per map, so a caller cannot aim for collisions it cannot see (foldhash claims
+/// minimal DoS resistance, not a cryptographic guarantee; a slate holds at most
+/// `max_candidates` keys).
+type KeyedHash = foldhash::fast::RandomState;
+
 /// Longest id, category (and, at the HTTP edge, `request_id`, `unit_id` and `slice`) in bytes.
 /// Labels are echoed into responses, logs and metrics, so an unbounded one would let one caller
 /// inflate all three; 1 KiB is far above any real item key.
@@ -436,7 +442,7 @@ impl RerankInput {
         let mut ids = Vec::with_capacity(n);
         let mut scores = Vec::with_capacity(n);
         let mut categories = Vec::with_capacity(n);
-        let mut embeddings = Vec::with_capacity(n);
+        let mut embeddings: Vec<Option<Vec<f32>>> = Vec::with_capacity(n);
         for c in candidates {
             ids.push(c.id);
             scores.push(c.score);
@@ -447,7 +453,7 @@ impl RerankInput {
             ids,
             &scores,
             categories,
-            |i| embeddings[i].as_deref(),
+            RowsIn::Each(|i: usize| embeddings[i].as_deref()),
             transform,
             require_embeddings,
             limits,
@@ -480,39 +486,81 @@ impl RerankInput {
             return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
         }
         match embeddings {
-            None => Self::assemble(ids, scores, categories, |_| None, transform, require_embeddings, limits),
+            None => {
+                let none = RowsIn::Each(|_| None);
+                Self::assemble(ids, scores, categories, none, transform, require_embeddings, limits)
+            }
             Some((data, d)) => {
                 assert_eq!(data.len(), n * d, "an n x d embedding matrix");
-                let row = |i: usize| Some(&data[i * d..(i + 1) * d]);
+                let row = RowsIn::Each(|i: usize| Some(&data[i * d..(i + 1) * d]));
                 Self::assemble(ids, scores, categories, row, transform, require_embeddings, limits)
             }
         }
     }
 
-    /// The validation both constructors share, over columns; `embedding(i)` is candidate `i`'s
-    /// embedding as sent.
-    fn assemble<'e>(
+    /// [`RerankInput::from_columns`] taking the `n × d` matrix by value: its rows are normalised
+    /// where they lie and it becomes the slate's own, so no row is copied. For callers that
+    /// gather a request's rows into one buffer anyway (the service, whose catalog rows and sent
+    /// embeddings land there).
+    ///
+    /// # Errors
+    /// As [`RerankInput::new`].
+    ///
+    /// # Panics
+    /// As [`RerankInput::from_columns`].
+    pub fn from_matrix(
         ids: Vec<String>,
-        sent_scores: &[f64],
+        scores: &[f64],
         categories: Vec<Option<String>>,
-        embedding: impl Fn(usize) -> Option<&'e [f32]>,
+        embeddings: Option<(Vec<f32>, usize)>,
         transform: ScoreTransform,
         require_embeddings: bool,
         limits: &Limits,
     ) -> Result<Self, ValidationError> {
         let n = ids.len();
-        let any_embedding = (0..n).any(|i| embedding(i).is_some());
-        let dim = match (n > 0).then(|| embedding(0)) {
-            Some(Some(e)) => e.len(),
-            Some(None) if any_embedding || require_embeddings => {
-                let reason = if require_embeddings {
-                    "the chosen algorithm compares embeddings"
-                } else {
-                    "other candidates have one (send embeddings for all candidates or for none)"
-                };
-                return Err(ValidationError::MissingEmbedding { index: 0, reason });
+        assert!(scores.len() == n && categories.len() == n, "one score and one category per id");
+        if n > limits.max_candidates {
+            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
+        }
+        let rows = match embeddings {
+            None => RowsIn::Each(|_| None),
+            Some((data, d)) => {
+                assert_eq!(data.len(), n * d, "an n x d embedding matrix");
+                RowsIn::Matrix(data, d)
             }
-            _ => 0,
+        };
+        Self::assemble(ids, scores, categories, rows, transform, require_embeddings, limits)
+    }
+
+    /// The validation every constructor shares, over columns; `rows` gives the embeddings.
+    fn assemble<'e, F: Fn(usize) -> Option<&'e [f32]>>(
+        ids: Vec<String>,
+        sent_scores: &[f64],
+        categories: Vec<Option<String>>,
+        rows: RowsIn<F>,
+        transform: ScoreTransform,
+        require_embeddings: bool,
+        limits: &Limits,
+    ) -> Result<Self, ValidationError> {
+        let n = ids.len();
+        let (any_embedding, dim) = match &rows {
+            RowsIn::Matrix(_, d) => (n > 0, *d),
+            RowsIn::Each(embedding) => {
+                let any_embedding = (0..n).any(|i| embedding(i).is_some());
+                let dim = match (n > 0).then(|| embedding(0)) {
+                    Some(Some(e)) => e.len(),
+                    Some(None) if any_embedding || require_embeddings => {
+                        let reason = if require_embeddings {
+                            "the chosen algorithm compares embeddings"
+                        } else {
+                            "other candidates have one (send embeddings for all candidates or for none)"
+                        };
+                        return Err(ValidationError::MissingEmbedding { index: 0, reason });
+                    }
+                    _ => 0,
+                };
+                (any_embedding, dim)
+            }
         };
         if any_embedding && (dim == 0 || dim > limits.max_dim) {
             return Err(ValidationError::DimensionOutOfRange { index: 0, got: dim, max: limits.max_dim });
@@ -520,7 +568,8 @@ impl RerankInput {
 
         // Duplicate ids first, borrowing the ids, so no id string is copied.
         {
-            let mut first_index: HashMap<&str, usize> = HashMap::with_capacity(n);
+            let mut first_index: HashMap<&str, usize, KeyedHash> =
+                HashMap::with_capacity_and_hasher(n, KeyedHash::default());
             for (index, id) in ids.iter().enumerate() {
                 if id.len() > MAX_LABEL_BYTES {
                     let got = id.len();
@@ -540,12 +589,18 @@ impl RerankInput {
 
         let mut scores = Vec::with_capacity(n);
         let mut groups = Vec::with_capacity(n);
-        let mut group_names: Vec<Option<String>> = Vec::new();
-        let mut group_of: HashMap<Option<String>, u32> = HashMap::new();
+        // Groups by first appearance, keyed on borrowed categories; each group's name is moved
+        // out of `categories` once the scan is done.
+        let mut first_of_group: Vec<usize> = Vec::new();
+        let mut group_of: HashMap<Option<&str>, u32, KeyedHash> = HashMap::default();
         let mut sent_negative_zero = Vec::new();
-        let mut data = Vec::with_capacity(if any_embedding { n * dim } else { 0 });
+        let (each, mut data) = match rows {
+            RowsIn::Each(f) => (Some(f), Vec::with_capacity(if any_embedding { n * dim } else { 0 })),
+            RowsIn::Matrix(data, _) => (None, data),
+        };
+        let mut inv_norm = Vec::with_capacity(if any_embedding { n } else { 0 });
 
-        for (index, category) in categories.into_iter().enumerate() {
+        for (index, category) in categories.iter().enumerate() {
             let score = sent_scores[index];
             if !score.is_finite() {
                 return Err(ValidationError::NonFinite { index, field: Field::Score });
@@ -558,34 +613,31 @@ impl RerankInput {
                     max: MAX_LABEL_BYTES,
                 });
             }
-            match (any_embedding, embedding(index)) {
-                (false, _) => {}
-                (true, None) => {
-                    return Err(ValidationError::MissingEmbedding {
-                        index,
-                        reason: "other candidates have one (send embeddings for all candidates or for none)",
-                    })
-                }
-                (true, Some(e)) => {
-                    if e.len() != dim {
-                        return Err(ValidationError::DimensionMismatch {
+            if any_embedding {
+                let norm2 = match &each {
+                    None => unit_row_in_place(&mut data[index * dim..(index + 1) * dim], index)?,
+                    Some(embedding) => match embedding(index) {
+                        None => return Err(ValidationError::MissingEmbedding {
                             index,
-                            got: e.len(),
-                            expected: dim,
-                        });
-                    }
-                    push_unit_row(e, index, &mut data)?;
-                }
+                            reason:
+                                "other candidates have one (send embeddings for all candidates or for none)",
+                        }),
+                        Some(e) if e.len() != dim => {
+                            return Err(ValidationError::DimensionMismatch {
+                                index,
+                                got: e.len(),
+                                expected: dim,
+                            });
+                        }
+                        Some(e) => push_unit_row(e, index, &mut data)?,
+                    },
+                };
+                inv_norm.push(1.0 / norm2.sqrt());
             }
-            let group = match group_of.get(&category) {
-                Some(&g) => g,
-                None => {
-                    let g = u32::try_from(group_names.len()).unwrap_or(u32::MAX);
-                    group_names.push(category.clone());
-                    group_of.insert(category, g);
-                    g
-                }
-            };
+            let group = *group_of.entry(category.as_deref()).or_insert_with(|| {
+                first_of_group.push(index);
+                u32::try_from(first_of_group.len() - 1).unwrap_or(u32::MAX)
+            });
             groups.push(group);
             if score == 0.0 && score.is_sign_negative() {
                 sent_negative_zero.push(index);
@@ -594,11 +646,11 @@ impl RerankInput {
             scores.push(score + 0.0);
         }
 
+        drop(group_of);
+        let mut categories = categories;
+        let group_names = first_of_group.iter().map(|&i| categories[i].take()).collect();
         let normalized = normalize_scores(&scores, transform);
-        let embeddings = any_embedding.then(|| {
-            let inv_norm = data.chunks_exact(dim).map(|r| 1.0 / norm2_f64(r).sqrt()).collect();
-            Embeddings { dim, data, inv_norm }
-        });
+        let embeddings = any_embedding.then_some(Embeddings { dim, data, inv_norm });
         Ok(Self {
             ids,
             scores,
@@ -769,12 +821,30 @@ impl RerankInput {
     }
 }
 
-/// L2-normalises `e` in f64 and appends it to `data` as f32.
-fn push_unit_row(e: &[f32], index: usize, data: &mut Vec<f32>) -> Result<(), ValidationError> {
-    push_unit(e, data).map_err(|fault| match fault {
+/// Where [`RerankInput::assemble`] finds the embeddings.
+enum RowsIn<F> {
+    /// Candidate `i`'s row as sent (`None` without one), copied into the slate's matrix.
+    Each(F),
+    /// Every candidate's row, `n × d` row-major: normalised where it lies, and kept.
+    Matrix(Vec<f32>, usize),
+}
+
+/// Candidate `index`'s row fault as a validation error.
+fn row_error(fault: RowFault, index: usize) -> ValidationError {
+    match fault {
         RowFault::NonFinite => ValidationError::NonFinite { index, field: Field::Embedding },
         RowFault::ZeroNorm => ValidationError::ZeroNorm { index },
-    })
+    }
+}
+
+/// L2-normalises `e` in f64 and appends it to `data` as f32 ([`push_unit`]).
+fn push_unit_row(e: &[f32], index: usize, data: &mut Vec<f32>) -> Result<f64, ValidationError> {
+    push_unit(e, data).map_err(|fault| row_error(fault, index))
+}
+
+/// L2-normalises candidate `index`'s row where it lies ([`unit_in_place`]).
+fn unit_row_in_place(row: &mut [f32], index: usize) -> Result<f64, ValidationError> {
+    unit_in_place(row).map_err(|fault| row_error(fault, index))
 }
 
 /// Why one embedding row cannot be normalised.
@@ -800,14 +870,33 @@ pub const UNIT_NORM2_TOLERANCE: f64 = 4.0 / 16_777_216.0;
 /// catalog relies on that: rows normalised once at load go through a request unchanged, and a slate
 /// built from catalog rows equals the slate built from the same embeddings sent inline.
 ///
+/// Returns `‖r‖²` of the row as stored ([`norm2_f64`] of the appended values), so callers that
+/// keep `1 / ‖r‖` need no second pass: for a row appended as it is, that is the norm already
+/// summed; for a scaled row it is summed over the new values while they are in cache.
+///
 /// # Errors
 /// [`RowFault::NonFinite`] for a NaN or infinite value, [`RowFault::ZeroNorm`] for a norm below
 /// 1e-30; `data` is unchanged then.
 ///
 /// # Complexity
 /// O(d) time, no allocation beyond `data`'s growth.
-pub fn push_unit(e: &[f32], data: &mut Vec<f32>) -> Result<(), RowFault> {
-    let norm2 = norm2_f64(e);
+pub fn push_unit(e: &[f32], data: &mut Vec<f32>) -> Result<f64, RowFault> {
+    let start = data.len();
+    data.extend_from_slice(e);
+    unit_in_place(&mut data[start..]).inspect_err(|_| data.truncate(start))
+}
+
+/// [`push_unit`] on a row where it lies: the same checks, and the same f32 values as
+/// `push_unit` appends (each component scaled in f64 by `1 / ‖row‖`, then rounded), so a slate
+/// built from one buffer equals one built row by row. Returns `‖row‖²` as stored.
+///
+/// # Errors
+/// As [`push_unit`]; the row is unchanged then.
+///
+/// # Complexity
+/// O(d) time, no allocation.
+pub fn unit_in_place(row: &mut [f32]) -> Result<f64, RowFault> {
+    let norm2 = norm2_f64(row);
     // Squares of finite f32 values cannot overflow f64, so the sum is finite exactly when every
     // value is.
     if !norm2.is_finite() {
@@ -818,12 +907,13 @@ pub fn push_unit(e: &[f32], data: &mut Vec<f32>) -> Result<(), RowFault> {
         return Err(RowFault::ZeroNorm);
     }
     if (norm2 - 1.0).abs() <= UNIT_NORM2_TOLERANCE {
-        data.extend_from_slice(e);
-        return Ok(());
+        return Ok(norm2);
     }
     let inv = 1.0 / norm2.sqrt();
-    data.extend(e.iter().map(|&x| (f64::from(x) * inv) as f32));
-    Ok(())
+    for x in row.iter_mut() {
+        *x = (f64::from(*x) * inv) as f32;
+    }
+    Ok(norm2_f64(row))
 }
 
 /// `‖e‖²` summed in f64 over eight interleaved partial sums (lane `j` takes `e[j], e[j+8], …`;
@@ -976,6 +1066,72 @@ mod tests {
         CandidateInput { id: id.into(), score, category: None, embedding: emb }
     }
 
+    /// The three constructors are one validation: on random slates (duplicates, non-finite
+    /// scores and values, zero rows, rows already unit, shared and missing categories) `new`,
+    /// `from_columns` and `from_matrix` return equal slates or equal errors, and a slate built
+    /// in place stores the bits `push_unit` appends. Slates with all rows present, since
+    /// `from_matrix` takes a full matrix.
+    #[test]
+    fn the_constructors_agree() {
+        let mut state = 0x2545_f491_4f6c_dd1d_u64;
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        let limits = Limits::default();
+        let (mut oks, mut errs) = (0, 0);
+        for round in 0..3_000 {
+            let n = (next() % 12) as usize;
+            let d = 1 + (next() % 9) as usize;
+            let mut candidates = Vec::with_capacity(n);
+            for i in 0..n {
+                let mut e: Vec<f32> = (0..d).map(|_| (next() % 2001) as f32 / 1000.0 - 1.0).collect();
+                match next() % 40 {
+                    0 => e[0] = f32::NAN,
+                    1 => e.fill(0.0),
+                    2 => {
+                        let norm = e.iter().map(|&x| f64::from(x).powi(2)).sum::<f64>().sqrt();
+                        e.iter_mut().for_each(|x| *x = (f64::from(*x) / norm) as f32);
+                    }
+                    _ => {}
+                }
+                let score = if next() % 50 == 0 { f64::INFINITY } else { (next() % 100) as f64 / 10.0 };
+                let id = if next() % 30 == 0 { "dup".to_owned() } else { format!("item-{i}") };
+                let category = match next() % 4 {
+                    0 => None,
+                    c => Some(format!("cat-{c}")),
+                };
+                candidates.push(CandidateInput { id, score, category, embedding: Some(e) });
+            }
+            let ids: Vec<String> = candidates.iter().map(|c| c.id.clone()).collect();
+            let scores: Vec<f64> = candidates.iter().map(|c| c.score).collect();
+            let cats: Vec<Option<String>> = candidates.iter().map(|c| c.category.clone()).collect();
+            let flat: Vec<f32> = candidates.iter().flat_map(|c| c.embedding.clone().unwrap()).collect();
+            let t = ScoreTransform::MinMax;
+            let by_rows = RerankInput::new(candidates, t, true, &limits);
+            let by_slice = RerankInput::from_columns(
+                ids.clone(),
+                &scores,
+                cats.clone(),
+                Some((&flat, d)),
+                t,
+                true,
+                &limits,
+            );
+            let by_matrix = RerankInput::from_matrix(ids, &scores, cats, Some((flat, d)), t, true, &limits);
+            assert_eq!(by_rows, by_slice, "round {round}");
+            assert_eq!(by_rows, by_matrix, "round {round}");
+            if by_rows.is_ok() {
+                oks += 1
+            } else {
+                errs += 1
+            }
+        }
+        assert!(oks > 500 && errs > 500, "both outcomes exercised: {oks} slates, {errs} errors");
+    }
+
     /// The catalog's contract (issue 16): a row normalised once goes through a request's
     /// normalisation bit for bit unchanged, because every normalised row lands inside
     /// [`UNIT_NORM2_TOLERANCE`]. Checked on 20,000 rows of SplitMix64 values over dimensions 1 to
@@ -997,9 +1153,8 @@ mod tests {
                 (0..d).map(|_| ((next() >> 11) as f64 / (1u64 << 53) as f64 - 0.5) as f32).collect();
             let e: Vec<f32> = e.iter().map(|&x| (f64::from(x) * scale) as f32).collect();
             let mut once = Vec::new();
-            if push_unit(&e, &mut once).is_err() {
-                continue;
-            }
+            let Ok(stored_norm2) = push_unit(&e, &mut once) else { continue };
+            assert_eq!(stored_norm2.to_bits(), norm2_f64(&once).to_bits(), "row {row}: the returned norm");
             let norm2: f64 = once.iter().map(|&x| f64::from(x) * f64::from(x)).sum();
             assert!((norm2 - 1.0).abs() <= UNIT_NORM2_TOLERANCE, "row {row}: |r|^2 - 1 = {}", norm2 - 1.0);
             let mut twice = Vec::new();

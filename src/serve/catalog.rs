@@ -534,7 +534,7 @@ impl Builder {
                 push_unit(&self.scratch, &mut self.rows)
             }
         };
-        fault.map_err(|f| match f {
+        fault.map(|_stored_norm2| ()).map_err(|f| match f {
             RowFault::NonFinite => self.row_error(row, "embedding", "holds a NaN or infinite value (as f32)"),
             RowFault::ZeroNorm => {
                 self.row_error(row, "embedding", "is all zeros; cosine similarity needs a non-zero vector")
