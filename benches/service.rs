@@ -1,7 +1,8 @@
 //! Service-path benchmarks: decoding one (500, 64) request with JSON-array embeddings vs
 //! `embedding_b64`, and as a protobuf message (our `Candidate` beside prost's derived one),
 //! validating it into a slate, and the cost of handing a job to the kernel pool versus running it
-//! inline (which sets `pool::INLINE_WORK_BELOW`).
+//! inline (which sets `pool::INLINE_WORK_BELOW`), and validation alone (`Engine::prepare`) of
+//! a decoded request with its embeddings inline or looked up in an item catalog.
 //!
 //! Run: `cargo bench --bench service`
 
@@ -11,7 +12,7 @@
 use std::hint::black_box;
 use std::time::Duration;
 
-use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use criterion::{criterion_group, criterion_main, BatchSize, Criterion, Throughput};
 use medley::api::wire::{decode_request, encode_b64_embedding, RerankRequest};
 use medley::grpc::candidate::reference::RerankRequest as DerivedRequest;
 use medley::grpc::proto;
@@ -114,5 +115,59 @@ fn handoff(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, decode, grpc_decode, handoff);
+/// `Engine::prepare` alone: a decoded request (as the gRPC front end hands it over) with its
+/// embeddings inline, and the same slate as ids and scores looked up in a catalog of its items.
+fn validate(c: &mut Criterion) {
+    let inline = decode_request(&body(500, 64, false)).unwrap();
+    let dir = std::env::temp_dir().join(format!("medley-bench-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("catalog.parquet");
+    write_catalog(&inline, &path);
+    let catalog = medley::serve::catalog::Catalog::load(&path, 4096).unwrap();
+    let _ = std::fs::remove_dir_all(&dir);
+    let mut ids_only = inline.clone();
+    for c in &mut ids_only.candidates {
+        c.embedding = None;
+        c.category = None;
+    }
+    let engine = Engine::new(Config::embedded_default(), 1);
+    let with_catalog =
+        Engine::new(Config::embedded_default(), 1).with_catalog(Some(std::sync::Arc::new(catalog)));
+    let mut group = c.benchmark_group("validate_N500_d64");
+    group.warm_up_time(Duration::from_secs(1)).measurement_time(Duration::from_secs(3)).sample_size(60);
+    group.bench_function("inline", |b| {
+        b.iter_batched(|| inline.clone(), |r| black_box(engine.prepare(r).unwrap()), BatchSize::SmallInput)
+    });
+    group.bench_function("catalog_ids", |b| {
+        b.iter_batched(
+            || ids_only.clone(),
+            |r| black_box(with_catalog.prepare(r).unwrap()),
+            BatchSize::SmallInput,
+        )
+    });
+    group.finish();
+}
+
+/// The request's items as a Parquet item catalog (id, embedding, category).
+fn write_catalog(request: &RerankRequest, path: &std::path::Path) {
+    use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
+    use std::sync::Arc;
+    let c = &request.candidates;
+    let d = c[0].embedding.as_ref().unwrap().len();
+    let values: Float32Array = c.iter().flat_map(|c| c.embedding.clone().unwrap()).collect();
+    let item = Arc::new(arrow_schema::Field::new("item", arrow_schema::DataType::Float32, false));
+    let embedding = FixedSizeListArray::try_new(item, d as i32, Arc::new(values), None).unwrap();
+    let columns: Vec<(&str, ArrayRef)> = vec![
+        ("id", Arc::new(StringArray::from_iter_values(c.iter().map(|c| &c.id)))),
+        ("embedding", Arc::new(embedding)),
+        ("category", Arc::new(StringArray::from_iter_values(c.iter().map(|c| c.category.clone().unwrap())))),
+    ];
+    let batch = RecordBatch::try_from_iter(columns).unwrap();
+    let file = std::fs::File::create(path).unwrap();
+    let mut w = parquet::arrow::ArrowWriter::try_new(file, batch.schema(), None).unwrap();
+    w.write(&batch).unwrap();
+    w.close().unwrap();
+}
+
+criterion_group!(benches, decode, grpc_decode, handoff, validate);
 criterion_main!(benches);

@@ -148,12 +148,28 @@ impl Engine {
         let mut sources = Vec::with_capacity(n_sent);
         let mut sent_index = Vec::with_capacity(n_sent);
         let mut unresolved = false;
-        let mut candidates = Vec::with_capacity(n_sent);
+        let mut ids = Vec::with_capacity(n_sent);
+        let mut scores = Vec::with_capacity(n_sent);
+        let mut categories = Vec::with_capacity(n_sent);
+        // The values the rows can hold at most: what the request carries inline (base64 text
+        // counted at its decoded length) and a catalog row for each of the others. The matrix is
+        // reserved at that size, so it neither grows by copies nor reserves beyond the request.
+        let catalog_dim = catalog.map_or(0, |c| c.dim());
+        let values = request
+            .candidates
+            .iter()
+            .map(|c| match (&c.embedding, &c.embedding_b64) {
+                (Some(e), _) => e.len(),
+                (None, Some(text)) => text.len() / 4 * 3 / 4 + 1,
+                (None, None) => catalog_dim,
+            })
+            .fold(0_usize, usize::saturating_add);
+        let mut rows = Rows::Absent(0);
         for (index, c) in request.candidates.into_iter().enumerate() {
             if let Some(got) = c.group.as_ref().map(String::len).filter(|&l| l > MAX_LABEL_BYTES) {
                 return Err(RequestError::GroupTooLong { index, got });
             }
-            let (mut embedding, mut source) = match (c.embedding, c.embedding_b64) {
+            let (embedding, mut source) = match (c.embedding, c.embedding_b64) {
                 (Some(_), Some(_)) => return Err(RequestError::ConflictingEmbedding { index }),
                 (Some(e), None) => (Some(e), Sent::Json),
                 (None, Some(text)) => (
@@ -166,11 +182,12 @@ impl Engine {
                 (None, None) => (None, Sent::Json),
             };
             let mut category = c.category;
+            let mut from_catalog = None;
             if let Some(catalog) = catalog.filter(|_| embedding.is_none() || category.is_none()) {
                 match catalog.get(&c.id) {
                     Some(item) => {
                         if embedding.is_none() {
-                            embedding = Some(item.embedding.to_vec());
+                            from_catalog = Some(item.embedding);
                             source = Sent::Catalog;
                         }
                         if category.is_none() {
@@ -195,19 +212,24 @@ impl Engine {
             }
             sources.push(source);
             sent_index.push(index);
-            candidates.push(CandidateInput { id: c.id, score: c.score, category, embedding });
+            rows.push(embedding.as_deref().or(from_catalog), values);
+            ids.push(c.id);
+            scores.push(c.score);
+            categories.push(category);
         }
         // An algorithm that does not compare embeddings serves a slate whose ids the catalog
         // partly knows: the catalog's rows are then left out rather than refusing the slate for
         // the candidates it lacks (the diversity measures skip the embedding distance).
         if unresolved {
-            for (c, source) in candidates.iter_mut().zip(&sources) {
+            let mut each = rows.into_each();
+            for (row, source) in each.iter_mut().zip(&sources) {
                 if *source == Sent::Catalog {
-                    c.embedding = None;
+                    *row = None;
                 }
             }
+            rows = Rows::Each(each);
         }
-        let dropped = n_sent - candidates.len();
+        let dropped = n_sent - ids.len();
         let as_sent = |error: ValidationError| {
             let source = error.index().and_then(|i| sources.get(i).copied()).unwrap_or_default();
             let error = if dropped == 0 {
@@ -219,8 +241,8 @@ impl Engine {
         };
         // A shadow that compares embeddings can only run when the slate has them.
         let shadow = slice.shadow.filter(|sh| sampled(sh.sample_rate));
-        let input =
-            RerankInput::new(candidates, st.score_transform, needs_embeddings, limits).map_err(as_sent)?;
+        let input = rows.validate(ids, &scores, categories, st.score_transform, needs_embeddings, limits);
+        let input = input.map_err(as_sent)?;
         let input = match profile {
             None => input,
             Some(weights) => input
@@ -250,6 +272,88 @@ impl Engine {
             catalog_version: catalog.map(|c| c.version().to_owned()),
             dropped: (catalog.is_some() && st.unknown_items == UnknownItems::Drop).then_some(dropped as u64),
         })
+    }
+}
+
+/// A request's embeddings as [`Engine::prepare`] gathers them: one `n × d` buffer while every
+/// row so far is present with one dimension (the usual slate: no vector per candidate, catalog
+/// rows copied once, and the buffer becomes the slate's own matrix), else one entry per
+/// candidate, so validation sees exactly what was sent and refuses it as before.
+enum Rows {
+    /// `count` candidates so far, none with a row.
+    Absent(usize),
+    /// `count` candidates so far, each with a row of `dim` values, concatenated.
+    Flat { data: Vec<f32>, dim: usize, count: usize },
+    /// One entry per candidate so far.
+    Each(Vec<Option<Vec<f32>>>),
+}
+
+impl Rows {
+    /// Appends the next candidate's row. `reserve` (at most the values the request can yield)
+    /// sizes the buffer at its first row: never the first row's length times the slate's size,
+    /// which a hostile first row would make far larger than the request.
+    fn push(&mut self, row: Option<&[f32]>, reserve: usize) {
+        match (&mut *self, row) {
+            (Self::Absent(count), None) => *count += 1,
+            (Self::Absent(0), Some(r)) => {
+                let mut data = Vec::with_capacity(reserve.max(r.len()));
+                data.extend_from_slice(r);
+                *self = Self::Flat { data, dim: r.len(), count: 1 };
+            }
+            (Self::Flat { data, dim, count }, Some(r)) if r.len() == *dim => {
+                data.extend_from_slice(r);
+                *count += 1;
+            }
+            (Self::Each(each), r) => each.push(r.map(<[f32]>::to_vec)),
+            (_, r) => {
+                let mut each = std::mem::replace(self, Self::Absent(0)).into_each();
+                each.push(r.map(<[f32]>::to_vec));
+                *self = Self::Each(each);
+            }
+        }
+    }
+
+    /// One entry per candidate.
+    fn into_each(self) -> Vec<Option<Vec<f32>>> {
+        match self {
+            Self::Absent(count) => vec![None; count],
+            Self::Flat { dim: 0, count, .. } => vec![Some(Vec::new()); count],
+            Self::Flat { data, dim, .. } => data.chunks_exact(dim).map(|r| Some(r.to_vec())).collect(),
+            Self::Each(each) => each,
+        }
+    }
+
+    /// The validated slate of these rows and columns ([`RerankInput::from_matrix`], or
+    /// [`RerankInput::new`] when the rows are not one matrix: the same checks either way).
+    fn validate(
+        self,
+        ids: Vec<String>,
+        scores: &[f64],
+        categories: Vec<Option<String>>,
+        transform: medley_core::model::ScoreTransform,
+        require_embeddings: bool,
+        limits: &medley_core::model::Limits,
+    ) -> Result<RerankInput, ValidationError> {
+        let matrix = match self {
+            Self::Absent(_) => None,
+            Self::Flat { data, dim, .. } => Some((data, dim)),
+            Self::Each(each) => {
+                let candidates = ids
+                    .into_iter()
+                    .zip(scores)
+                    .zip(categories)
+                    .zip(each)
+                    .map(|(((id, &score), category), embedding)| CandidateInput {
+                        id,
+                        score,
+                        category,
+                        embedding,
+                    })
+                    .collect();
+                return RerankInput::new(candidates, transform, require_embeddings, limits);
+            }
+        };
+        RerankInput::from_matrix(ids, scores, categories, matrix, transform, require_embeddings, limits)
     }
 }
 
@@ -367,5 +471,78 @@ impl Reranked {
             dropped: p.dropped,
             diversity: self.diversity(),
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::api::wire::WireCandidate;
+    use crate::testing::Rng;
+    use medley_core::model::{Limits, ScoreTransform};
+
+    /// `prepare` gathers rows into one matrix when it can and per candidate when it cannot; either
+    /// way the slate or the error equals `RerankInput::new` on the candidates as sent. Random
+    /// requests with rows absent, present, of other dimensions, empty, non-finite and zero, in
+    /// any mix; the embedded default (DPP, min-max scores) needs embeddings, so a request with
+    /// none is refused too.
+    #[test]
+    fn gathered_rows_validate_as_the_candidates_sent() {
+        let engine = Engine::new(Config::embedded_default(), 1);
+        let limits = Limits::default();
+        let mut rng = Rng(0x00c0_ffee_d00d_5eed);
+        let mut outcomes = [0_usize; 2];
+        for round in 0..2_000 {
+            let n = (rng.next() % 10) as usize;
+            let d = 1 + (rng.next() % 6) as usize;
+            let mixed = rng.next().is_multiple_of(3);
+            let candidates: Vec<WireCandidate> = (0..n)
+                .map(|i| {
+                    let mut e: Vec<f32> = (0..d).map(|_| (rng.next() % 201) as f32 / 100.0 - 1.0).collect();
+                    let embedding = match (mixed, rng.next() % 12) {
+                        (true, 0) => None,
+                        (true, 1) => Some(vec![0.5; d + 1]),
+                        (true, 2) => Some(Vec::new()),
+                        (_, 3) => {
+                            e[0] = f32::NAN;
+                            Some(e)
+                        }
+                        (_, 4) => Some(vec![0.0; d]),
+                        _ => Some(e),
+                    };
+                    WireCandidate {
+                        id: format!("tent-{}", if rng.next().is_multiple_of(25) { 0 } else { i }),
+                        score: (rng.next() % 50) as f64,
+                        category: (!rng.next().is_multiple_of(3)).then(|| format!("cat-{}", rng.next() % 3)),
+                        embedding,
+                        embedding_b64: None,
+                        group: None,
+                    }
+                })
+                .collect();
+            let expected: Vec<CandidateInput> = candidates
+                .iter()
+                .map(|c| CandidateInput {
+                    id: c.id.clone(),
+                    score: c.score,
+                    category: c.category.clone(),
+                    embedding: c.embedding.clone(),
+                })
+                .collect();
+            let expected = RerankInput::new(expected, ScoreTransform::MinMax, true, &limits);
+            let request = RerankRequest { candidates, ..RerankRequest::default() };
+            match (engine.prepare(request), expected) {
+                (Ok(p), Ok(e)) => {
+                    assert_eq!(p.input, e, "round {round}");
+                    outcomes[0] += 1;
+                }
+                (Err(RequestError::Invalid { error, .. }), Err(e)) => {
+                    assert_eq!(error, e, "round {round}");
+                    outcomes[1] += 1;
+                }
+                (got, e) => panic!("round {round}: prepare gave {got:?}, new gave {e:?}"),
+            }
+        }
+        assert!(outcomes.iter().all(|&c| c > 300), "both outcomes exercised: {outcomes:?}");
     }
 }
