@@ -481,10 +481,6 @@ impl RerankInput {
         limits: &Limits,
     ) -> Result<Self, ValidationError> {
         let n = ids.len();
-        assert!(scores.len() == n && categories.len() == n, "one score and one category per id");
-        if n > limits.max_candidates {
-            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
-        }
         match embeddings {
             None => {
                 let none = RowsIn::Each(|_| None);
@@ -518,10 +514,6 @@ impl RerankInput {
         limits: &Limits,
     ) -> Result<Self, ValidationError> {
         let n = ids.len();
-        assert!(scores.len() == n && categories.len() == n, "one score and one category per id");
-        if n > limits.max_candidates {
-            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
-        }
         let rows = match embeddings {
             None => RowsIn::Each(|_| None),
             Some((data, d)) => {
@@ -543,6 +535,10 @@ impl RerankInput {
         limits: &Limits,
     ) -> Result<Self, ValidationError> {
         let n = ids.len();
+        assert!(sent_scores.len() == n && categories.len() == n, "one score and one category per id");
+        if n > limits.max_candidates {
+            return Err(ValidationError::TooManyCandidates { got: n, max: limits.max_candidates });
+        }
         let (any_embedding, dim) = match &rows {
             RowsIn::Matrix(_, d) => (n > 0, *d),
             RowsIn::Each(embedding) => {
