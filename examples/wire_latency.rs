@@ -7,7 +7,9 @@
 //! cargo build --release --bin medley && target/release/medley serve &
 //! cargo run --release --example wire_latency -- --http 127.0.0.1:8080 --grpc 127.0.0.1:8082 --requests 2000
 //! ```
-//! `--grpc` may be left out (an older server without gRPC); `--wires json` measures one wire.
+//! `--grpc` may be left out (an older server without gRPC); `--wires json` measures one wire;
+//! `--candidates 1` measures the floor of a call (client, transport, wake-ups) with a slate of
+//! one.
 //!
 //! The `ids` wire sends ids and scores only, for a server whose item catalog holds the slate's
 //! items: `--write-catalog FILE` writes them as Parquet and exits; serve with `[catalog] path =
@@ -22,8 +24,9 @@ use serde_json::json;
 /// One candidate: id, score, category, embedding.
 type Row = (String, f64, String, Vec<f32>);
 
-/// The request: 500 candidates in 6 categories, 64-dimension embeddings, DPP, k = 50.
-fn slate() -> (Vec<Row>, serde_json::Value) {
+/// The request: `n` candidates (500 unless told) in 6 categories, 64-dimension embeddings, DPP,
+/// k = 50.
+fn slate(n: usize) -> (Vec<Row>, serde_json::Value) {
     let mut state = 0x5EED_u64;
     let mut next = move || {
         state ^= state << 13;
@@ -31,7 +34,7 @@ fn slate() -> (Vec<Row>, serde_json::Value) {
         state ^= state << 17;
         (state >> 11) as f64 / (1u64 << 53) as f64
     };
-    let rows: Vec<Row> = (0..500)
+    let rows: Vec<Row> = (0..n)
         .map(|i| {
             let e: Vec<f32> = (0..64).map(|_| (next() - 0.5) as f32).collect();
             (format!("tent-{i:04}"), next(), format!("cat-{}", i % 6), e)
@@ -159,14 +162,15 @@ async fn main() {
     let grpc = arg("--grpc");
     let n: usize = arg("--requests").and_then(|r| r.parse().ok()).unwrap_or(2000);
     let wires = arg("--wires").unwrap_or_else(|| "json,b64,grpc".into());
-    let (rows, head) = slate();
+    let candidates: usize = arg("--candidates").and_then(|c| c.parse().ok()).unwrap_or(500);
+    let (rows, head) = slate(candidates);
     if let Some(path) = arg("--write-catalog") {
         write_catalog(&rows, &path);
-        println!("wrote the slate's 500 items to {path}");
+        println!("wrote the slate's {candidates} items to {path}");
         return;
     }
     let client = reqwest::Client::new();
-    println!("(500, 64, 50) DPP, {n} sequential requests per wire, after 50 to warm up");
+    println!("({candidates}, 64, 50) DPP, {n} sequential requests per wire, after 50 to warm up");
     println!("{:<10} {:>10} {:>10} {:>10}", "wire", "bytes", "p50 ms", "p99 ms");
     for wire in wires.split(',') {
         let mut times = Vec::with_capacity(n);
