@@ -150,23 +150,12 @@ fn validate(c: &mut Criterion) {
 
 /// The request's items as a Parquet item catalog (id, embedding, category).
 fn write_catalog(request: &RerankRequest, path: &std::path::Path) {
-    use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
-    use std::sync::Arc;
     let c = &request.candidates;
     let d = c[0].embedding.as_ref().unwrap().len();
-    let values: Float32Array = c.iter().flat_map(|c| c.embedding.clone().unwrap()).collect();
-    let item = Arc::new(arrow_schema::Field::new("item", arrow_schema::DataType::Float32, false));
-    let embedding = FixedSizeListArray::try_new(item, d as i32, Arc::new(values), None).unwrap();
-    let columns: Vec<(&str, ArrayRef)> = vec![
-        ("id", Arc::new(StringArray::from_iter_values(c.iter().map(|c| &c.id)))),
-        ("embedding", Arc::new(embedding)),
-        ("category", Arc::new(StringArray::from_iter_values(c.iter().map(|c| c.category.clone().unwrap())))),
-    ];
-    let batch = RecordBatch::try_from_iter(columns).unwrap();
-    let file = std::fs::File::create(path).unwrap();
-    let mut w = parquet::arrow::ArrowWriter::try_new(file, batch.schema(), None).unwrap();
-    w.write(&batch).unwrap();
-    w.close().unwrap();
+    let rows = c.iter().flat_map(|c| c.embedding.clone().unwrap()).collect();
+    let ids = c.iter().map(|c| &c.id);
+    let categories = c.iter().map(|c| c.category.clone().unwrap());
+    medley::serve::catalog::write_parquet(path, ids, rows, d, categories).unwrap();
 }
 
 criterion_group!(benches, decode, grpc_decode, handoff, validate);

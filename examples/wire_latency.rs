@@ -46,22 +46,9 @@ fn slate(n: usize) -> (Vec<Row>, serde_json::Value) {
 
 /// The slate's items as an item catalog.
 fn write_catalog(rows: &[Row], path: &str) {
-    use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
-    use std::sync::Arc;
-    let values: Float32Array = rows.iter().flat_map(|r| r.3.iter().copied()).collect();
-    let item = Arc::new(arrow_schema::Field::new("item", arrow_schema::DataType::Float32, false));
-    let embedding = FixedSizeListArray::try_new(item, 64, Arc::new(values), None).unwrap();
-    let columns: Vec<(&str, ArrayRef)> = vec![
-        ("id", Arc::new(StringArray::from_iter_values(rows.iter().map(|r| &r.0)))),
-        ("embedding", Arc::new(embedding)),
-        ("category", Arc::new(StringArray::from_iter_values(rows.iter().map(|r| &r.2)))),
-    ];
-    let batch = RecordBatch::try_from_iter(columns).unwrap();
-    let mut w =
-        parquet::arrow::ArrowWriter::try_new(std::fs::File::create(path).unwrap(), batch.schema(), None)
-            .unwrap();
-    w.write(&batch).unwrap();
-    w.close().unwrap();
+    let values = rows.iter().flat_map(|r| r.3.iter().copied()).collect();
+    let (ids, categories) = (rows.iter().map(|r| &r.0), rows.iter().map(|r| &r.2));
+    medley::serve::catalog::write_parquet(std::path::Path::new(path), ids, values, 64, categories).unwrap();
 }
 
 /// `wire`: `json` (arrays), `b64` or `ids` (ids and scores only).

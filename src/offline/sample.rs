@@ -19,8 +19,6 @@
 
 use std::io::Write;
 
-use std::sync::Arc;
-
 use serde_json::{json, Value};
 
 /// Categories of the invented shop, most popular first, with id prefixes and popularity weights.
@@ -225,32 +223,10 @@ impl Catalogue {
 
     /// The items as an item catalog in Parquet (snappy).
     fn write_parquet(&self, path: &std::path::Path) -> std::io::Result<()> {
-        use arrow_array::{ArrayRef, FixedSizeListArray, Float32Array, RecordBatch, StringArray};
-        use arrow_schema::{DataType, Field};
         let d = self.embedding.first().map_or(1, Vec::len);
-        let values: Float32Array = self.embedding.iter().flatten().map(|&x| x as f32).collect();
-        let item = Arc::new(Field::new("item", DataType::Float32, false));
-        let dim = i32::try_from(d).map_err(std::io::Error::other)?;
-        let embedding =
-            FixedSizeListArray::try_new(item, dim, Arc::new(values), None).map_err(std::io::Error::other)?;
-        let columns: Vec<(&str, ArrayRef)> = vec![
-            ("id", Arc::new(StringArray::from_iter_values(&self.id))),
-            ("embedding", Arc::new(embedding)),
-            (
-                "category",
-                Arc::new(StringArray::from_iter_values(self.category.iter().map(|&c| CATEGORIES[c].0))),
-            ),
-        ];
-        let batch = RecordBatch::try_from_iter(columns).map_err(std::io::Error::other)?;
-        let props = parquet::file::properties::WriterProperties::builder()
-            .set_compression(parquet::basic::Compression::SNAPPY)
-            .build();
-        let file = std::fs::File::create(path)?;
-        let mut writer = parquet::arrow::ArrowWriter::try_new(file, batch.schema(), Some(props))
-            .map_err(std::io::Error::other)?;
-        writer.write(&batch).map_err(std::io::Error::other)?;
-        writer.close().map_err(std::io::Error::other)?;
-        Ok(())
+        let rows = self.embedding.iter().flatten().map(|&x| x as f32).collect();
+        let categories = self.category.iter().map(|&c| CATEGORIES[c].0);
+        crate::serve::catalog::write_parquet(path, &self.id, rows, d, categories)
     }
 }
 
