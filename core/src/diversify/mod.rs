@@ -139,6 +139,9 @@ pub struct Workspace {
     heap_protected: std::collections::BinaryHeap<Bound>,
     /// Windowed DPP and SSD (lazy): the rows by score rank, transposed into f32 panels.
     narrow: Vec<f32>,
+    /// Windowed DPP and SSD (lazy): each covered rank's f32 similarity to each ring slot's
+    /// member (slot-major), then each covered rank's screened residual.
+    sims: Vec<f32>,
     /// Per-candidate running quantity: DPP residual `d_i²`, MMR running max-similarity.
     running: Vec<f64>,
     /// DPP: orthonormal basis of the picked rows, one d-length row per pick.
@@ -208,7 +211,7 @@ impl Workspace {
                 + self.coords.capacity()
                 + self.proj.capacity())
                 * size_of::<f64>()
-            + self.narrow.capacity() * size_of::<f32>()
+            + (self.narrow.capacity() + self.sims.capacity()) * size_of::<f32>()
             + (self.heap.capacity() + self.heap_protected.capacity()) * size_of::<Bound>()
             + self.screen.retained_bytes()
     }

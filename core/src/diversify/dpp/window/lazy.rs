@@ -1,47 +1,50 @@
-//! The sliding window evaluated lazily: a candidate's residual is computed only when a step's
-//! scan reaches it, and skipped when a bound left by an earlier step rules it out.
+//! The sliding window evaluated lazily and screened in f32: a candidate's residual is computed
+//! exactly, in f64, only when a step's scan reaches it and an f32 bound cannot rule it out.
 //!
 //! Legend as in the parent module, plus: `g_i` candidate i's similarities `⟨u_i, u_j⟩` to the
-//! members; `R` the upper-triangular factor of the members' rows in build order
-//! (`u_{p_b} = Σ_{s ≤ b} R_sb·q_s`, `p_b` the member behind basis row `b`); `T = R⁻¹`.
+//! members; `R` the upper-triangular factor of the members' rows in the brute force's order
+//! (`u_{p_b} = Σ_{s ≤ b} R_sb·q_s`, `p_b` the member behind basis row `b`); `T = R⁻¹`, so that
+//! `q_b = Σ_s T_sb·u_{p_s}` and `C_i = Tᵀ·g_i`; a tilde marks a value computed in f32.
 //!
 //! # Method
 //! A step's scan visits candidates in descending score order and stops at the first whose
 //! score bound falls below the best gain so far (parent module, `best_gain`); on the bench's
-//! clustered slates it reaches about half of them, on unclustered ones a few percent. So:
-//! - **Covered prefix**: the ranks a scan has reached so far (grown in blocks of 16) keep
-//!   their f32 rows in transposed panels and their similarity to every member, one column per
-//!   ring slot; a new member costs one pass over the covered panels, O(covered·d), with f32
-//!   loads widened to f64 (an f32 product is exact in f64, so these are the f64 dot products
-//!   of the stored rows at half the memory traffic).
-//! - **Per step**: the basis of the window and `T` are rebuilt from the members, O(w²·d), by
-//!   CGS2 with the brute force's skip rule (a member whose leftover is under `EPSILON` adds no
-//!   row), newest member first; see [`Lazy::rebuild`] for when the order flips.
-//! - **Per candidate reached**: `C = Tᵀ·g_i`, O(w²), and `d_i² = 1 − ‖C‖²`. Because the basis
-//!   runs newest first, the partial sums of `C_b²` are the residuals against the newest 1, 2, …
-//!   members. Those members stay in the window for the next `w − 1 − age` steps, and a
-//!   residual against fewer members is no smaller, so each partial sum bounds `d_i²` from above
-//!   at a later step. The scan skips a candidate whose bounded gain is below the best so far
-//!   (M. Minoux's lazy evaluation, "Accelerated greedy algorithms for maximizing submodular set
-//!   functions", 1978, applied to bounds that expire as the window slides).
+//! clustered slates it reaches a few hundred candidates of 2 000, on unclustered ones fewer. So:
+//! - **Covered prefix**: the ranks a scan has reached so far (grown in blocks of 32) keep their
+//!   unit rows rounded to f32 in transposed panels of eight, and their f32 similarity `g̃` to
+//!   every member, one column per ring slot. A new member costs one f32 pass over the covered
+//!   panels, O(covered·d), eight candidates per FMA.
+//! - **Per step**: the window's orthonormal basis in f64 (CGS2, in the brute force's order and
+//!   with its skip rule: a member whose leftover is under `EPSILON` adds no row) and `T`,
+//!   O(w²·d). Then every covered rank's screened residual `1 − ‖T̃ᵀ·g̃_i‖²` in f32,
+//!   O(covered·w²/2), eight candidates per FMA. [`Lazy::rebuild`] bounds the screen's error by
+//!   `E`, so that `d_i² ≤ screened_i + E`.
+//! - **Per candidate reached**: when the gain at `screened_i + E` is below the best so far, the
+//!   candidate is out for this step; otherwise its exact residual, in f64 straight from the
+//!   orthonormal basis as the brute force takes it, O(w·d).
+//!
+//! The screen costs a few f32 operations per candidate where an exact residual costs `w·d` f64
+//! ones, and a step evaluates exactly only the candidates whose bounds reach the best so far:
+//! the certification of the unbounded screened kernel (module `screened`) applied to a window
+//! that slides. Nothing is carried from one step to the next but the similarities, which do not
+//! depend on the window, so a member's departure needs no bookkeeping.
 //!
 //! # Complexity
-//! O(k·(w²·d + C·d + E·w²)) for `C` covered ranks and `E` candidates evaluated per step (both
-//! at most N); the eager loop's is O(k·N·(d + w)). The parent module chooses this path when
-//! `w² ≤ 8·d`, where an evaluation costs about as much as an eager update. Extra memory:
-//! O(N·d) f32 for the panels and O(N·w) for the similarities and bounds.
+//! O(k·(w²·d + C·(d + w²))) for `C` covered ranks (at most N, rounded up to 32), the `C` terms
+//! in f32 eight at a time; plus O(w·d) f64 per exact evaluation, a few per step on the bench's
+//! slates. The eager loop's is O(k·N·(d + w)) in f64. The parent module chooses this path when
+//! `w² ≤ 8·d`. Extra memory: O(N·d) f32 for the panels and O(N·w) f32 for the similarities.
 //!
 //! # Invariants
-//! Every covered rank holds its similarity to every member; a stored bound was left by a step
-//! whose window was well conditioned ([`Lazy::rebuild`]) and is read only while the members it
-//! counts are still in the window.
+//! Every covered rank holds its similarity to every member and its screened residual against
+//! the current window; a candidate is ruled out only by a bound at or above its exact residual.
 //!
 //! # Numerical notes
-//! All values that decide a pick are f64. `C = Tᵀ·g` magnifies rounding by about `‖T‖`, so it
-//! is used only when `‖T‖_F² ≤ 1e6` (residuals then agree with the brute force's to about
-//! 1e-12); a degenerate or ill-conditioned window takes the coordinates straight from the
-//! orthonormal basis instead, as the brute force does. A bound must be exceeded by `SLACK`
-//! before it rules a candidate out. Duplicated candidates compute identical values and tie.
+//! All values that decide a pick are f64, computed as the brute force computes them. The
+//! screen's error grows with `‖T‖` (the window's conditioning); [`Lazy::rebuild`] derives `E`
+//! from `T`'s column sums, and a window so ill-conditioned that `E` would pass 1 screens
+//! nothing (every candidate reached is evaluated exactly). Duplicated candidates compute
+//! identical values and tie.
 
 use std::collections::VecDeque;
 
@@ -53,18 +56,19 @@ use super::{choose, surely_below, Gain, Residual};
 use crate::diversify::{take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
-/// Absolute slack added to a stale bound on `d_i²` before it may rule a candidate out: far above
-/// the bound's rounding error (about 1e-11 at worst, module notes), far below any gap that
-/// decides a pick.
+/// Absolute slack added to every screened bound: it covers the gap between the exact path's
+/// f64 residual and the true one (about 1e-13 for a well-conditioned window).
 const SLACK: f64 = 1e-10;
 
-/// `‖T‖_F²` up to which the window counts as well conditioned (every member's leftover against
-/// any others at least 1e-6, far above `EPSILON`), so bounds may be kept.
-const WELL_CONDITIONED: f64 = 1e6;
+/// Unit roundoff of f32.
+const U32: f64 = f32::EPSILON as f64 / 2.0;
+
+/// Panels per block: ranks are covered, and projected, four panels at a time.
+const BLOCK_PANELS: usize = 4;
 
 /// Whether the lazy loop should run a window of `capacity` members over d-dimensional rows:
-/// its per-candidate substitution (about `w²/2` multiply-adds) stays within a few eager updates
-/// (`d + 3w`) when `w² ≤ 8·d`.
+/// its per-candidate screen (about `w²/2` f32 multiply-adds a step) stays within a few eager
+/// updates (`d + 3w`) when `w² ≤ 8·d`.
 pub(super) fn pays(capacity: usize, d: usize) -> bool {
     capacity.saturating_mul(capacity) <= 8 * d
 }
@@ -83,31 +87,42 @@ pub(super) fn run<S: Simd>(
     let emb = input.embeddings().expect("select checked for embeddings");
     let (n, d) = (input.len(), emb.dim());
     let m = params.k().min(n);
-    let padded = n.div_ceil(LANES) * LANES;
+    // A panel is one SIMD vector of f32 candidates (eight on AVX2).
+    let lanes = std::mem::size_of::<S::f32s>() / std::mem::size_of::<f32>();
+    let block = BLOCK_PANELS * lanes;
+    let padded = n.div_ceil(block) * block;
     let s = input.normalized();
     ws.order.clear();
     ws.order.extend(0..n);
     ws.order.sort_unstable_by(|&a, &b| s[b].total_cmp(&s[a]).then(a.cmp(&b)));
-    // Panels (by score rank), similarities and bounds need no zeroing: `covered` and
-    // `evaluated` guard them.
+    // Panels (by score rank), similarities and screened residuals need no zeroing: `covered`
+    // guards them.
     if ws.narrow.len() < padded * d {
         ws.narrow.resize(padded * d, 0.0);
     }
-    if ws.coords.len() < 2 * padded * capacity {
-        ws.coords.resize(2 * padded * capacity, 0.0);
+    if ws.sims.len() < (capacity + 1) * padded {
+        ws.sims.resize((capacity + 1) * padded, 0.0);
     }
     ws.evaluated.clear();
     ws.evaluated.resize(padded, 0);
+    // Per block: picks its similarities have seen, and one more than the step its screen is for.
+    ws.filled.clear();
+    ws.filled.resize(2 * padded / block, 0);
     ws.running.clear();
     ws.running.resize(padded, 1.0);
     let mut st = Lazy {
+        simd,
+        block,
         picks: 0,
-        members: VecDeque::new(),
+        members: VecDeque::with_capacity(capacity),
         member_rows: vec![0.0; capacity * d],
-        rows: Vec::new(),
-        bounds: false,
+        member32: vec![0.0; capacity * d],
+        rows: Vec::with_capacity(capacity),
         t: Vec::new(),
-        g: Vec::new(),
+        t32: Vec::new(),
+        slack: SLACK,
+        g: Vec::with_capacity(d),
+        panel: Vec::with_capacity(capacity),
         covered: 0,
         lambda: params.lambda(),
         gain,
@@ -127,13 +142,13 @@ pub(super) fn run<S: Simd>(
         let d2 = st.residual(input, ws, rank, None).unwrap_or(0.0);
         take(input, ws, &mut sel, ws.order[rank], d2);
         if sel.indices.len() < m {
-            st.enter(simd, input, ws, rank);
+            st.enter(input, ws, rank);
         }
     }
     sel
 }
 
-impl Residual for Lazy {
+impl<S: Simd> Residual for Lazy<S> {
     #[inline(always)]
     fn get(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize, floor: Option<f64>) -> Option<f64> {
         self.residual(input, ws, rank, floor)
@@ -141,36 +156,44 @@ impl Residual for Lazy {
 }
 
 /// The window, its factor, and how much of the score order is kept up to date.
-struct Lazy {
+struct Lazy<S: Simd> {
+    simd: S,
+    /// Ranks per block: [`BLOCK_PANELS`] panels of one SIMD vector each.
+    block: usize,
     /// Picks so far.
     picks: usize,
     /// The window: the last `capacity` picks' ring slots, oldest first.
     members: VecDeque<usize>,
     /// The members' unit rows, one ring slot (d values) each.
     member_rows: Vec<f64>,
-    /// Basis rows, in build order: (ring slot, age) of the member behind each, age 0 being the
-    /// newest member.
-    rows: Vec<(usize, usize)>,
-    /// Whether the basis runs newest first and this step's residuals leave bounds for later
-    /// steps ([`Lazy::rebuild`]).
-    bounds: bool,
-    /// `T = R⁻¹` (upper triangular), stored transposed (row b holds `T_0b ..= T_bb`, then
-    /// zeros) in `r × r`: `q_b = Σ_s T_sb·u_{p_s}`, so a candidate's coordinates are `C = Tᵀ·g_i`.
+    /// The same rows rounded to f32.
+    member32: Vec<f32>,
+    /// The ring slot of the member behind each basis row, in build order (oldest first).
+    rows: Vec<usize>,
+    /// `T = R⁻¹` (upper triangular), stored transposed in `r × r`: row b holds
+    /// `T_0b ..= T_bb`, then zeros.
     t: Vec<f64>,
-    /// The similarities of the candidate being evaluated to the basis rows' members, in row order.
+    /// `T` rounded to f32 and broadcast to a SIMD vector, packed by column: column b
+    /// (`T_0b ..= T_bb`) from `b(b + 1)/2`.
+    t32: Vec<S::f32s>,
+    /// `E`: how far a screened residual may fall below the exact one, plus [`SLACK`].
+    slack: f64,
+    /// One candidate's unit row in f64, for an exact evaluation.
     g: Vec<f64>,
-    /// Ranks below this (a whole number of panels) have their rows in the panels and their
-    /// similarities to every member.
+    /// One panel's similarities to the basis rows' members, in row order (screen scratch).
+    panel: Vec<S::f32s>,
+    /// Ranks below this (a whole number of blocks) have their rows in the panels, their
+    /// similarities to every member and their screened residual against the current window.
     covered: usize,
     lambda: f64,
     gain: Gain,
     capacity: usize,
     d: usize,
-    /// `n` rounded up to whole panels.
+    /// `n` rounded up to whole blocks.
     padded: usize,
 }
 
-impl Lazy {
+impl<S: Simd> Lazy<S> {
     /// The gain a residual gives a candidate of normalised score `s` (the parent module's
     /// `Gain`), `None` where windowed DPP's `EPSILON` rule excludes it.
     #[inline(always)]
@@ -184,35 +207,55 @@ impl Lazy {
         }
     }
 
-    /// Extends the covered ranks to include `rank`, in blocks of four panels: copies their rows
-    /// into the panels and projects them on every member. Each rank is covered once, so this
-    /// costs O(N·w·d) in all at most.
+    /// Extends the covered ranks to include `rank`, a block at a time: copies their unit rows
+    /// into the panels, projects them on every member and screens them against the current
+    /// window. Each rank is covered once, so this costs O(N·w·d) in all at most.
     #[inline(always)]
     fn cover(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize) {
-        let d = self.d;
-        let to = ((rank + 1).div_ceil(4 * LANES) * 4 * LANES).min(self.padded);
+        let (d, padded, from) = (self.d, self.padded, self.covered);
+        let (block, lanes) = (self.block, self.block / BLOCK_PANELS);
+        let to = ((rank + 1).div_ceil(block) * block).min(padded);
         let emb = input.embeddings().expect("select checked for embeddings");
-        let Workspace { narrow, coords, order, .. } = &mut *ws;
-        for r in self.covered..to {
-            let (p, l) = (r / LANES, r % LANES);
-            let row = order.get(r).map(|&i| &emb.as_slice()[i * d..(i + 1) * d]);
+        let Workspace { narrow, order, filled, .. } = &mut *ws;
+        filled[2 * from / block..2 * to / block].fill(0);
+        for r in from..to {
+            let (p, l) = (r / lanes, r % lanes);
+            let row = order.get(r).map(|&i| (&emb.as_slice()[i * d..(i + 1) * d], emb.inv_norms()[i]));
             for j in 0..d {
-                narrow[(p * d + j) * LANES + l] = row.map_or(0.0, |x| x[j]);
+                narrow[(p * d + j) * lanes + l] = row.map_or(0.0, |(x, inv)| (f64::from(x[j]) * inv) as f32);
             }
-        }
-        let panels = &narrow[self.covered * d..to * d];
-        for &slot in &self.members {
-            let out = &mut coords[slot * self.padded + self.covered..slot * self.padded + to];
-            project(panels, &self.member_rows[slot * d..(slot + 1) * d], d, out);
-            scale(out, &order[self.covered..], emb.inv_norms());
         }
         self.covered = to;
     }
 
-    /// Adds the candidate at `rank` to the window (dropping the oldest member when full),
-    /// projects the covered ranks on it, and rebuilds the basis.
+    /// Brings block `blk` (covered) up to date for this step: projects its panels on every
+    /// member that entered since it was last synced and is still in the window, then screens
+    /// it against the current window, each at most once a step. A block the scans never reach
+    /// costs nothing, and a member that leaves before a block is reached is never projected.
     #[inline(always)]
-    fn enter<S: Simd>(&mut self, simd: S, input: &RerankInput, ws: &mut Workspace, rank: usize) {
+    fn sync(&mut self, ws: &mut Workspace, blk: usize) {
+        let (d, padded, block, t) = (self.d, self.padded, self.block, self.picks);
+        let Workspace { narrow, sims, filled, .. } = &mut *ws;
+        let since = filled[2 * blk].max(t - self.members.len());
+        if since < t {
+            let panels = &narrow[blk * block * d..(blk + 1) * block * d];
+            for pick in since..t {
+                let slot = pick % self.capacity;
+                let out = &mut sims[slot * padded + blk * block..slot * padded + (blk + 1) * block];
+                project(self.simd, panels, &self.member32[slot * d..(slot + 1) * d], d, out);
+            }
+            filled[2 * blk] = t;
+        }
+        if filled[2 * blk + 1] != t + 1 {
+            self.screen(sims, blk * block, (blk + 1) * block);
+            filled[2 * blk + 1] = t + 1;
+        }
+    }
+
+    /// Adds the candidate at `rank` to the window (dropping the oldest member when full) and
+    /// rebuilds the basis; blocks are projected on it when a scan reaches them ([`Lazy::sync`]).
+    #[inline(always)]
+    fn enter(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize) {
         let d = self.d;
         let emb = input.embeddings().expect("select checked for embeddings");
         let slot = self.picks % self.capacity;
@@ -223,124 +266,149 @@ impl Lazy {
         self.members.push_back(slot);
         let i = ws.order[rank];
         let inv = emb.inv_norms()[i];
-        for (x, &v) in self.member_rows[slot * d..(slot + 1) * d].iter_mut().zip(&emb.as_slice()[i * d..(i + 1) * d]) {
+        let row = &emb.as_slice()[i * d..(i + 1) * d];
+        for ((x, x32), &v) in self.member_rows[slot * d..(slot + 1) * d]
+            .iter_mut()
+            .zip(&mut self.member32[slot * d..(slot + 1) * d])
+            .zip(row)
+        {
             *x = f64::from(v) * inv;
+            *x32 = *x as f32;
         }
-        let out = &mut ws.coords[slot * self.padded..slot * self.padded + self.covered];
-        project(&ws.narrow[..self.covered * d], &self.member_rows[slot * d..(slot + 1) * d], d, out);
-        scale(out, &ws.order, emb.inv_norms());
-        self.rebuild(simd, ws);
+        self.rebuild(ws);
     }
 
     /// `d_i²` against the current window for the candidate at `rank`, computed at most once a
-    /// step; `None` when the bound left by an earlier step shows that it cannot reach `floor`
-    /// (the best gain so far).
-    ///
-    /// After computing `d_i²` in full at step `t_i`, the candidate keeps `1 − P[a]`, its
-    /// residual against the newest `a + 1` members of that window (the basis runs newest
-    /// first, so these are partial sums of its coordinates). At a later step `t` the newest
-    /// `min(len, capacity − (t − t_i))` of those members are still in the window, and a
-    /// residual against fewer members is no smaller, so `1 − P` there bounds `d_i²` from above.
+    /// step; `None` when its screened bound shows that it cannot reach `floor` (the best gain
+    /// so far).
     #[inline(always)]
     fn residual(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize, floor: Option<f64>) -> Option<f64> {
-        let (t, cap, padded) = (self.picks, self.capacity, self.padded);
-        let stamp = ws.evaluated[rank];
-        if stamp == t + 1 {
+        let t = self.picks;
+        if ws.evaluated[rank] == t + 1 {
             return Some(ws.running[rank]);
-        }
-        let bounds = cap * padded;
-        if let (Some(floor), true) = (floor, stamp > 0) {
-            let then = stamp - 1;
-            let kept = (cap + then).saturating_sub(t).min(then.min(cap));
-            if kept > 0 {
-                let bound = 1.0 - ws.coords[bounds + rank * cap + kept - 1] + SLACK;
-                let s = input.normalized()[ws.order[rank]];
-                if surely_below(self.gain, self.lambda, s, bound, floor)
-                    || self.value(s, bound).is_none_or(|v| v < floor)
-                {
-                    return None;
-                }
-            }
         }
         if rank >= self.covered {
             self.cover(input, ws, rank);
         }
-        let r = self.rows.len();
-        let Workspace { coords, running, evaluated, order, basis, .. } = &mut *ws;
-        let (sims, suffix) = coords.split_at_mut(bounds);
-        let suffix = &mut suffix[rank * cap..(rank + 1) * cap];
-        let mut kept = 0.0;
-        if self.bounds {
-            // C_b = Σ_{s ≤ b} T_sb·g_s (T stored transposed): short dot products, none waiting
-            // on the one before; partial sums of C_b² by member age.
-            self.g.clear();
-            self.g.extend(self.rows.iter().map(|&(slot, _)| sims[slot * padded + rank]));
-            let mut age = 0;
-            for (b, (tb, &(_, row_age))) in self.t.chunks_exact(r.max(1)).zip(&self.rows).enumerate() {
-                let cb = short_dot(&tb[..=b], &self.g);
-                while age < row_age {
-                    suffix[age] = kept;
-                    age += 1;
-                }
-                kept = cb.mul_add(cb, kept);
+        let i = ws.order[rank];
+        if let Some(floor) = floor {
+            self.sync(ws, rank / self.block);
+            // `min` also maps a NaN (a screen overflowed by a window too ill-conditioned to
+            // screen, whose slack is then infinite) to the trivial bound 1.
+            let bound = (f64::from(ws.sims[self.capacity * self.padded + rank]) + self.slack).min(1.0);
+            let s = input.normalized()[i];
+            if surely_below(self.gain, self.lambda, s, bound, floor)
+                || self.value(s, bound).is_none_or(|v| v < floor)
+            {
+                return None;
             }
-            suffix[age..self.members.len()].fill(kept);
-        } else {
-            // A degenerate or ill-conditioned window, where T's size would magnify rounding:
-            // the coordinates straight from the orthonormal basis, O(r·d), as the brute force
-            // takes them; and no bound for later steps (`1 − 0`, the trivial `d_i² ≤ 1`).
-            let d = self.d;
-            let emb = input.embeddings().expect("select checked for embeddings");
-            let i = order[rank];
-            let inv = emb.inv_norms()[i];
-            self.g.clear();
-            self.g.extend(emb.as_slice()[i * d..(i + 1) * d].iter().map(|&x| f64::from(x) * inv));
-            for q in basis.chunks_exact(d).take(r) {
-                let c = short_dot(q, &self.g);
-                kept = c.mul_add(c, kept);
-            }
-            suffix[..self.members.len()].fill(0.0);
         }
-        evaluated[rank] = t + 1;
-        running[rank] = 1.0 - kept;
-        Some(running[rank])
-    }
-
-    /// Rebuilds the window's basis (`ws.basis`) and its inverse factor.
-    ///
-    /// The basis runs newest member first, so that partial sums of a candidate's coordinates
-    /// are its residuals against the newest members, the bounds [`Lazy::residual`] keeps. That
-    /// order gives the brute force's span only when no member is near the span of the others:
-    /// the `EPSILON` rule (a member whose leftover is under it adds no row) decides by order.
-    /// So when a member is skipped, or `‖T‖_F² > 1e6` (then some member's leftover may be under
-    /// `1/‖T‖_F²`, the least squared singular value's lower bound), the basis is rebuilt in the
-    /// brute force's order, oldest first, and this step keeps no bounds. Otherwise every
-    /// subset of these members keeps every member in either order, so a later window's span
-    /// (built oldest first, the survivors first) contains the span of the survivors, and the
-    /// bounds hold.
-    #[inline(always)]
-    fn rebuild<S: Simd>(&mut self, simd: S, ws: &mut Workspace) {
-        self.bounds = self.factor(simd, ws, true)
-            && self.t.iter().map(|t| t * t).sum::<f64>() <= WELL_CONDITIONED;
-        if !self.bounds {
-            self.factor(simd, ws, false);
-        }
-    }
-
-    /// Builds the basis and `T` from the members, newest first or oldest first, skipping a
-    /// member whose leftover against the rows before it is under `EPSILON`; false when one was
-    /// skipped.
-    #[inline(always)]
-    fn factor<S: Simd>(&mut self, simd: S, ws: &mut Workspace, newest_first: bool) -> bool {
+        // Exact: the coordinates straight from the orthonormal basis, as the brute force takes
+        // them.
         let d = self.d;
+        let emb = input.embeddings().expect("select checked for embeddings");
+        let inv = emb.inv_norms()[i];
+        self.g.clear();
+        self.g.extend(emb.as_slice()[i * d..(i + 1) * d].iter().map(|&x| f64::from(x) * inv));
+        let mut kept = 0.0;
+        for q in ws.basis.chunks_exact(d).take(self.rows.len()) {
+            let c = short_dot(q, &self.g);
+            kept = c.mul_add(c, kept);
+        }
+        ws.evaluated[rank] = t + 1;
+        ws.running[rank] = 1.0 - kept;
+        // The screen's invariant, checked wherever this step screened the candidate's block
+        // (every debug-build test that runs this loop checks the error bound of `rebuild`).
+        debug_assert!(
+            ws.filled[2 * (rank / self.block) + 1] != t + 1
+                || ws.running[rank] <= f64::from(ws.sims[self.capacity * self.padded + rank]) + self.slack
+                || self.slack.is_infinite(),
+            "screened {} + E {} below the exact residual {}",
+            ws.sims[self.capacity * self.padded + rank],
+            self.slack,
+            ws.running[rank]
+        );
+        Some(ws.running[rank])
+    }
+
+    /// Rebuilds the window's basis and `T`, and the screen's error bound `E`.
+    ///
+    /// The bound, with `u = 2⁻²⁴` and `r` basis rows (F. Higham's rounding model, *Accuracy and
+    /// Stability of Numerical Algorithms*, 2nd ed., §3.1, `γ_n = n·u/(1 − n·u)`):
+    /// - `g̃_s`, an f32 dot product of two unit rows each rounded to f32, is within
+    ///   `δ = (d + 4)·u` of `g_s` (`γ_d` for the sum, `2u` for the two roundings, Cauchy–Schwarz
+    ///   for `Σ|u_j·m_j| ≤ 1`).
+    /// - `C̃_b = Σ_s T̃_sb·g̃_s` in f32 is within `e_b = ‖T_:b‖₁·(δ + (r + 2)·u·(1 + δ) + 1e-12)`
+    ///   of `C_b`: the similarities' error, `T`'s rounding to f32, the f32 sum, and the f64
+    ///   rounding of `q_b = Σ_s T_sb·u_{p_s}` itself.
+    /// - With `ε = ‖e‖₂`, `‖C‖ ≥ ‖C̃‖ − ε` and `‖C̃‖ ≤ 1 + ε` give
+    ///   `d² = 1 − ‖C‖² ≤ 1 − ‖C̃‖² + 2ε(1 + ε)`, and the f32 evaluation of `1 − ‖C̃‖²` adds at
+    ///   most `(r + 2)·u·(2 + 3ε)`.
+    ///
+    /// `E` is that sum (with 1 % to spare) plus [`SLACK`]. A window with `ε > 1/2` screens
+    /// nothing: `E = ∞`.
+    #[inline(always)]
+    fn rebuild(&mut self, ws: &mut Workspace) {
+        self.factor(ws);
+        let (r, d) = (self.rows.len(), self.d as f64);
+        let delta = (d + 4.0) * U32;
+        let per = delta + (r as f64 + 2.0) * U32 * (1.0 + delta) + 1e-12;
+        let eps = (0..r)
+            .map(|b| {
+                let e = self.t[b * r..=b * r + b].iter().map(|x| x.abs()).sum::<f64>() * per;
+                e * e
+            })
+            .sum::<f64>()
+            .sqrt();
+        self.slack = if eps > 0.5 {
+            f64::INFINITY
+        } else {
+            (2.0 * eps * (1.0 + eps) + (r as f64 + 2.0) * U32 * (2.0 + 3.0 * eps)) * 1.01 + SLACK
+        };
+        self.t32.clear();
+        for b in 0..r {
+            let simd = self.simd;
+            self.t32.extend(self.t[b * r..=b * r + b].iter().map(|&x| simd.splat_f32s(x as f32)));
+        }
+    }
+
+    /// Screened residuals `1 − ‖T̃ᵀ·g̃_i‖²` of the ranks in `from..to` (whole panels), against
+    /// the current basis rows: per panel, `C̃_b` for a SIMD vector of candidates at a time.
+    #[inline(always)]
+    fn screen(&mut self, sims: &mut [f32], from: usize, to: usize) {
+        let (simd, r, padded) = (self.simd, self.rows.len(), self.padded);
+        let lanes = self.block / BLOCK_PANELS;
+        let (sim, out) = sims.split_at_mut(self.capacity * padded);
+        let (out, _) = S::as_mut_simd_f32s(&mut out[from..to]);
+        let zero = simd.splat_f32s(0.0);
+        for (p, o) in out.iter_mut().enumerate() {
+            let at = from + p * lanes;
+            self.panel.clear();
+            for &slot in &self.rows {
+                let (g, _) = S::as_simd_f32s(&sim[slot * padded + at..slot * padded + at + lanes]);
+                self.panel.push(g[0]);
+            }
+            let mut acc = zero;
+            for b in 0..r {
+                let mut c = zero;
+                for (&tsb, &g) in self.t32[b * (b + 1) / 2..][..=b].iter().zip(&self.panel) {
+                    c = simd.mul_add_e_f32s(tsb, g, c);
+                }
+                acc = simd.mul_add_e_f32s(c, c, acc);
+            }
+            *o = simd.sub_f32s(simd.splat_f32s(1.0), acc);
+        }
+    }
+
+    /// Builds the basis and `T` from the members, oldest first, skipping a member whose
+    /// leftover against the rows before it is under `EPSILON` (the brute force's rule).
+    #[inline(always)]
+    fn factor(&mut self, ws: &mut Workspace) {
+        let (simd, d) = (self.simd, self.d);
         self.rows.clear();
         ws.basis.clear();
         ws.proj.clear();
-        let len = self.members.len();
-        let mut all = true;
-        for at in 0..len {
-            let age = if newest_first { at } else { len - 1 - at };
-            let slot = self.members[len - 1 - age];
+        for &slot in &self.members {
             let Workspace { basis, scratch, proj, .. } = &mut *ws;
             let row = &self.member_rows[slot * d..(slot + 1) * d];
             let rank = self.rows.len();
@@ -353,12 +421,11 @@ impl Lazy {
             }
             if 1.0 - removed < EPSILON || rank == d {
                 proj.truncate(start);
-                all = false;
                 continue;
             }
             push_basis_vector(simd, row, basis, scratch, d);
             proj.push(dot(simd, row, &basis[rank * d..(rank + 1) * d]));
-            self.rows.push((slot, age));
+            self.rows.push(slot);
         }
         // T = R⁻¹ column by column: R·x = e_b by back substitution, O(r³/6) in all. Column b
         // of R (R_0b ..= R_bb) is packed at `proj[b(b+1)/2 ..]`.
@@ -375,68 +442,50 @@ impl Lazy {
                 tb[s] = -sum / proj[col(s) + s];
             }
         }
-        all
     }
 }
 
-/// Candidates per f32 panel: one f64 vector of AVX2 once widened.
-const LANES: usize = 4;
-
-/// `out[r] = Σ_j x_r[j]·q_j` in f64 for the candidates in `panel` (f32 rows transposed in
-/// panels of [`LANES`]: element (r, j) at `((r / 4)·d + j)·4 + r % 4`). An f32 product is exact
-/// in f64, so this is the f64 dot product of the stored rows, read at half the bytes. Four
-/// panels and two dimensions at a time keep eight FMA chains in flight; written for the
-/// compiler to vectorise each panel's four lanes (one widening load, one FMA).
+/// `out[r] = Σ_j x_r[j]·q_j` in f32 for the candidates in `panel` (f32 rows transposed in
+/// panels of one SIMD vector: element (r, j) at `((r / L)·d + j)·L + r % L` for L lanes), whole
+/// blocks of [`BLOCK_PANELS`] panels. One broadcast of `q_j` per dimension; four panels and two
+/// dimensions at a time keep eight FMA chains in flight.
 #[inline(always)]
-fn project(panel: &[f32], q: &[f64], d: usize, out: &mut [f64]) {
-    let mut blocks = panel.chunks_exact(4 * LANES * d).zip(out.chunks_exact_mut(4 * LANES));
-    for (block, o) in &mut blocks {
-        let mut acc = [[0.0f64; LANES]; 8];
-        let mut j = 0;
-        while j + 2 <= d {
-            for b in 0..4 {
-                let x = &block[(b * d + j) * LANES..(b * d + j + 2) * LANES];
-                for l in 0..LANES {
-                    acc[2 * b][l] = f64::from(x[l]).mul_add(q[j], acc[2 * b][l]);
-                    acc[2 * b + 1][l] = f64::from(x[LANES + l]).mul_add(q[j + 1], acc[2 * b + 1][l]);
-                }
-            }
-            j += 2;
+fn project<S: Simd>(simd: S, panel: &[f32], q: &[f32], d: usize, out: &mut [f32]) {
+    let (pv, _) = S::as_simd_f32s(panel);
+    let (ov, _) = S::as_mut_simd_f32s(out);
+    let (q2, q_last) = (q.chunks_exact(2), q.chunks_exact(2).remainder());
+    let zero = simd.splat_f32s(0.0);
+    for (block, o) in pv.chunks_exact(BLOCK_PANELS * d).zip(ov.chunks_exact_mut(BLOCK_PANELS)) {
+        let (x0, rest) = block.split_at(d);
+        let (x1, rest) = rest.split_at(d);
+        let (x2, x3) = rest.split_at(d);
+        let (p0, p1, p2, p3) = (x0.chunks_exact(2), x1.chunks_exact(2), x2.chunks_exact(2), x3.chunks_exact(2));
+        let (l0, l1, l2, l3) = (p0.remainder(), p1.remainder(), p2.remainder(), p3.remainder());
+        let mut acc = [zero; 8];
+        for ((((qj, a), b), c), e) in q2.clone().zip(p0).zip(p1).zip(p2).zip(p3) {
+            let (q0, q1) = (simd.splat_f32s(qj[0]), simd.splat_f32s(qj[1]));
+            acc[0] = simd.mul_add_e_f32s(a[0], q0, acc[0]);
+            acc[1] = simd.mul_add_e_f32s(a[1], q1, acc[1]);
+            acc[2] = simd.mul_add_e_f32s(b[0], q0, acc[2]);
+            acc[3] = simd.mul_add_e_f32s(b[1], q1, acc[3]);
+            acc[4] = simd.mul_add_e_f32s(c[0], q0, acc[4]);
+            acc[5] = simd.mul_add_e_f32s(c[1], q1, acc[5]);
+            acc[6] = simd.mul_add_e_f32s(e[0], q0, acc[6]);
+            acc[7] = simd.mul_add_e_f32s(e[1], q1, acc[7]);
         }
-        if j < d {
-            for b in 0..4 {
-                let x = &block[(b * d + j) * LANES..(b * d + j + 1) * LANES];
-                for l in 0..LANES {
-                    acc[2 * b][l] = f64::from(x[l]).mul_add(q[j], acc[2 * b][l]);
-                }
-            }
+        // An odd d leaves one dimension.
+        if let (Some(&qj), Some(&a), Some(&b), Some(&c), Some(&e)) =
+            (q_last.first(), l0.first(), l1.first(), l2.first(), l3.first())
+        {
+            let q0 = simd.splat_f32s(qj);
+            acc[0] = simd.mul_add_e_f32s(a, q0, acc[0]);
+            acc[2] = simd.mul_add_e_f32s(b, q0, acc[2]);
+            acc[4] = simd.mul_add_e_f32s(c, q0, acc[4]);
+            acc[6] = simd.mul_add_e_f32s(e, q0, acc[6]);
         }
-        for b in 0..4 {
-            for l in 0..LANES {
-                o[b * LANES + l] = acc[2 * b][l] + acc[2 * b + 1][l];
-            }
+        for (k, v) in o.iter_mut().enumerate() {
+            *v = simd.add_f32s(acc[2 * k], acc[2 * k + 1]);
         }
-    }
-    // A last block of fewer than four panels (the covered ranks end at a block, or at N).
-    let panels = out.len() / LANES;
-    for p in (panels / 4) * 4..panels {
-        let mut acc = [0.0f64; LANES];
-        for j in 0..d {
-            let x = &panel[(p * d + j) * LANES..(p * d + j + 1) * LANES];
-            for l in 0..LANES {
-                acc[l] = f64::from(x[l]).mul_add(q[j], acc[l]);
-            }
-        }
-        out[p * LANES..(p + 1) * LANES].copy_from_slice(&acc);
-    }
-}
-
-/// Scales each projection by its candidate's inverse norm (`ranks[r]` is the candidate at the
-/// r-th position of `out`; padding past N is left as is).
-#[inline(always)]
-fn scale(out: &mut [f64], ranks: &[usize], inv_norms: &[f64]) {
-    for (o, &i) in out.iter_mut().zip(ranks) {
-        *o *= inv_norms[i];
     }
 }
 
