@@ -127,7 +127,9 @@ pub struct Workspace {
     /// DPP (lazy): unit rows widened to f64, row-major N × d; windowed DPP and SSD: the same
     /// rows transposed into SIMD-width panels.
     wide: Vec<f64>,
-    /// MMR and DPP: how many picks each candidate's exact state has seen.
+    /// MMR and DPP: how many picks each candidate's exact state has seen. Windowed DPP and SSD
+    /// (lazy): per block of ranks, the picks its similarities have seen and the step its screen
+    /// is for.
     filled: Vec<usize>,
     /// Windowed DPP and SSD (lazy): one more than the step at which each candidate's residual
     /// was last computed in full (0: never).
@@ -148,8 +150,8 @@ pub struct Workspace {
     basis: Vec<f64>,
     /// DPP: the vector being orthogonalised.
     scratch: Vec<f64>,
-    /// Windowed DPP and SSD: every candidate's coordinates in the window's basis, column-major
-    /// (stride × N).
+    /// Windowed DPP and SSD (eager): every candidate's coordinates in the window's basis,
+    /// column-major (stride × N).
     coords: Vec<f64>,
     /// Windowed DPP and SSD: one projection per candidate (and a member's row before that).
     proj: Vec<f64>,

@@ -30,7 +30,8 @@
 //!
 //! A window that slides and is short against the dimension (`w² ≤ 8·d`, the usual feed windows
 //! of 3 to 20) runs the lazy loop of module `lazy` instead: the same picks, computed only for
-//! the candidates a step's scan reaches, with bounds that carry over from step to step.
+//! the candidates a step's scan reaches and, among those, exactly only where an f32 screen of
+//! the residuals cannot rule them out.
 //!
 //! # Complexity
 //! O(N log N) once to order candidates by score, then O(N·d + N·w) time per step, O(k·(N·d + N·w)) in all, plus O(w²·d) per rebuild; extra memory

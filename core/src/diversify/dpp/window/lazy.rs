@@ -2,49 +2,58 @@
 //! exactly, in f64, only when a step's scan reaches it and an f32 bound cannot rule it out.
 //!
 //! Legend as in the parent module, plus: `g_i` candidate i's similarities `⟨u_i, u_j⟩` to the
-//! members; `R` the upper-triangular factor of the members' rows in the brute force's order
-//! (`u_{p_b} = Σ_{s ≤ b} R_sb·q_s`, `p_b` the member behind basis row `b`); `T = R⁻¹`, so that
-//! `q_b = Σ_s T_sb·u_{p_s}` and `C_i = Tᵀ·g_i`; a tilde marks a value computed in f32.
+//! members; `G` the members' Gram matrix; `R` the upper-triangular factor of the members' rows
+//! in the brute force's order (`u_{p_b} = Σ_{s ≤ b} R_sb·q_s`, `p_b` the member behind basis row
+//! `b`, and `RᵀR = G`); `T = R⁻¹`, so that `q_b = Σ_s T_sb·u_{p_s}` and `C_i = Tᵀ·g_i`; a tilde
+//! marks a value computed in f32.
 //!
 //! # Method
 //! A step's scan visits candidates in descending score order and stops at the first whose
-//! score bound falls below the best gain so far (parent module, `best_gain`); on the bench's
-//! clustered slates it reaches a few hundred candidates of 2 000, on unclustered ones fewer. So:
-//! - **Covered prefix**: the ranks a scan has reached so far (grown in blocks of 32) keep their
-//!   unit rows rounded to f32 in transposed panels of eight, and their f32 similarity `g̃` to
-//!   every member, one column per ring slot. A new member costs one f32 pass over the covered
-//!   panels, O(covered·d), eight candidates per FMA.
-//! - **Per step**: the window's orthonormal basis in f64 (CGS2, in the brute force's order and
-//!   with its skip rule: a member whose leftover is under `EPSILON` adds no row) and `T`,
-//!   O(w²·d). Then every covered rank's screened residual `1 − ‖T̃ᵀ·g̃_i‖²` in f32,
-//!   O(covered·w²/2), eight candidates per FMA. [`Lazy::rebuild`] bounds the screen's error by
-//!   `E`, so that `d_i² ≤ screened_i + E`.
+//! score bound falls below the best gain so far (parent module, `best_gain`). On the bench's
+//! clustered slates, where every candidate pays about `ln 0.6` for its group's member in the
+//! window, it reaches most of the slate; on unclustered ones a few percent. So:
+//! - **Covered prefix**: the ranks a scan has reached so far, grown in blocks of four panels
+//!   (32 ranks on AVX2), keep their unit rows rounded to f32 in transposed panels of one SIMD
+//!   vector. Each block keeps its f32 similarities `g̃` to the members, one column per ring
+//!   slot, brought up to date when a scan reaches it ([`Lazy::sync`]): one f32 pass over the
+//!   block per member that entered since, O(32·d), eight candidates per FMA.
+//! - **Per step**: one new row of `G` (w dot products, O(w·d)), then `R` by Cholesky in the
+//!   brute force's order with its skip rule (a member whose leftover, the pivot, is under
+//!   `EPSILON` adds no row) and `T`, O(w³). A block reached this step is screened once:
+//!   `1 − ‖T̃ᵀ·g̃_i‖²` in f32, O(w²/2) per candidate, eight at a time. [`Lazy::rebuild`] bounds
+//!   the screen's error by `E`, so that `d_i² ≤ screened_i + E`.
 //! - **Per candidate reached**: when the gain at `screened_i + E` is below the best so far, the
-//!   candidate is out for this step; otherwise its exact residual, in f64 straight from the
-//!   orthonormal basis as the brute force takes it, O(w·d).
+//!   candidate is out for this step. Otherwise its exact residual in f64, `1 − ‖Tᵀ·g_i‖²` with
+//!   `g_i` from f64 dot products, O(w·d).
 //!
 //! The screen costs a few f32 operations per candidate where an exact residual costs `w·d` f64
-//! ones, and a step evaluates exactly only the candidates whose bounds reach the best so far:
-//! the certification of the unbounded screened kernel (module `screened`) applied to a window
-//! that slides. Nothing is carried from one step to the next but the similarities, which do not
-//! depend on the window, so a member's departure needs no bookkeeping.
+//! ones, and a step evaluates exactly only the candidates whose bounds reach the best so far
+//! (on the bench's slates about 4 a step, of about 300 reached): the certification of the
+//! unbounded screened kernel (module `screened`) applied to a window that slides. Nothing is
+//! carried from one step to the next but the similarities, which do not depend on the window,
+//! so a member's departure needs no bookkeeping.
 //!
 //! # Complexity
-//! O(k·(w²·d + C·(d + w²))) for `C` covered ranks (at most N, rounded up to 32), the `C` terms
-//! in f32 eight at a time; plus O(w·d) f64 per exact evaluation, a few per step on the bench's
-//! slates. The eager loop's is O(k·N·(d + w)) in f64. The parent module chooses this path when
-//! `w² ≤ 8·d`. Extra memory: O(N·d) f32 for the panels and O(N·w) f32 for the similarities.
+//! O(k·(w·d + w³ + B·(d + w²))) for `B` ranks in blocks a step's scan reaches (at most N,
+//! rounded up to a block), the `B` terms in f32 eight at a time, plus O(w·d) f64 per exact
+//! evaluation. A block left unreached while a member's whole stay in the window passes is never
+//! projected on that member. The eager loop's is O(k·N·(d + w)) in f64. The parent module
+//! chooses this path when `w² ≤ 8·d`. Extra memory: O(N·d) f32 for the panels, O(N·w) f32 for
+//! the similarities, O(w·d + w²) f64 for the members and `G`.
 //!
 //! # Invariants
-//! Every covered rank holds its similarity to every member and its screened residual against
-//! the current window; a candidate is ruled out only by a bound at or above its exact residual.
+//! A block screened this step holds every member's similarity and its screened residual
+//! against the current window; a candidate is ruled out only by a bound at or above its exact
+//! residual (asserted in debug builds wherever it is checked).
 //!
 //! # Numerical notes
-//! All values that decide a pick are f64, computed as the brute force computes them. The
-//! screen's error grows with `‖T‖` (the window's conditioning); [`Lazy::rebuild`] derives `E`
-//! from `T`'s column sums, and a window so ill-conditioned that `E` would pass 1 screens
-//! nothing (every candidate reached is evaluated exactly). Duplicated candidates compute
-//! identical values and tie.
+//! All values that decide a pick are f64. Cholesky of a Gram matrix squares the window's
+//! condition number, so `1 − ‖Tᵀ·g‖²` is used only while `‖T‖_F² ≤ 100` ([`WELL_CONDITIONED`]);
+//! a worse window takes its residuals from an orthonormal basis built by CGS2 over the members'
+//! rows, exactly as the brute force takes them, with that basis's `T` for the screen. The
+//! screen's error grows with `‖T‖`; [`Lazy::rebuild`] derives `E` from `T`'s column sums, and a
+//! window so ill-conditioned that `E` would pass 1 screens nothing (every candidate reached is
+//! evaluated exactly). Duplicated candidates compute identical values and tie.
 
 use std::collections::VecDeque;
 
@@ -56,8 +65,8 @@ use super::{choose, surely_below, Gain, Residual};
 use crate::diversify::{take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
-/// Absolute slack added to every screened bound: it covers the gap between the exact path's
-/// f64 residual and the true one (about 1e-13 for a well-conditioned window).
+/// Absolute slack added to every screened bound, for the rounding of the exact path's own f64
+/// arithmetic with the same `T` (about 1e-13 when `‖T‖_F² ≤ 100`).
 const SLACK: f64 = 1e-10;
 
 /// `‖T‖_F²` up to which exact residuals are taken as `1 − ‖Tᵀ·g‖²` with `T` from the Cholesky
@@ -368,16 +377,17 @@ impl<S: Simd> Lazy<S> {
         Some(ws.running[rank])
     }
 
-    /// Rebuilds the window's basis and `T`, and the screen's error bound `E`.
+    /// Refactors the window (`R` and `T` from `G`, and the CGS2 basis too when `T` is too
+    /// large), and the screen's error bound `E`.
     ///
-    /// The bound, with `u = 2⁻²⁴` and `r` basis rows (F. Higham's rounding model, *Accuracy and
+    /// The bound, with `u = 2⁻²⁴` and `r` basis rows (N. J. Higham's rounding model, *Accuracy and
     /// Stability of Numerical Algorithms*, 2nd ed., §3.1, `γ_n = n·u/(1 − n·u)`):
     /// - `g̃_s`, an f32 dot product of two unit rows each rounded to f32, is within
     ///   `δ = (d + 4)·u` of `g_s` (`γ_d` for the sum, `2u` for the two roundings, Cauchy–Schwarz
     ///   for `Σ|u_j·m_j| ≤ 1`).
     /// - `C̃_b = Σ_s T̃_sb·g̃_s` in f32 is within `e_b = ‖T_:b‖₁·(δ + (r + 2)·u·(1 + δ) + 1e-12)`
-    ///   of `C_b`: the similarities' error, `T`'s rounding to f32, the f32 sum, and the f64
-    ///   rounding of `q_b = Σ_s T_sb·u_{p_s}` itself.
+    ///   of `C_b`: the similarities' error, `T`'s rounding to f32, the f32 sum, and (when exact
+    ///   residuals come from the basis) the f64 rounding of `q_b = Σ_s T_sb·u_{p_s}` itself.
     /// - With `ε = ‖e‖₂`, `‖C‖ ≥ ‖C̃‖ − ε` and `‖C̃‖ ≤ 1 + ε` give
     ///   `d² = 1 − ‖C‖² ≤ 1 − ‖C̃‖² + 2ε(1 + ε)`, and the f32 evaluation of `1 − ‖C̃‖²` adds at
     ///   most `(r + 2)·u·(2 + 3ε)`.
