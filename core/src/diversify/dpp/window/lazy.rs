@@ -48,7 +48,7 @@
 //!
 //! # Numerical notes
 //! All values that decide a pick are f64. Cholesky of a Gram matrix squares the window's
-//! condition number, so `1 − ‖Tᵀ·g‖²` is used only while `‖T‖_F² ≤ 100` ([`WELL_CONDITIONED`]);
+//! condition number, so `1 − ‖Tᵀ·g‖²` is used only while `r·‖T‖_F² ≤ 300` ([`WELL_CONDITIONED`]);
 //! a worse window takes its residuals from an orthonormal basis built by CGS2 over the members'
 //! rows, exactly as the brute force takes them, with that basis's `T` for the screen. The
 //! screen's error grows with `‖T‖`; [`Lazy::rebuild`] derives `E` from `T`'s column sums, and a
@@ -66,16 +66,18 @@ use crate::diversify::{take, Workspace};
 use crate::model::{Params, RerankInput, Selection};
 
 /// Absolute slack added to every screened bound, for the rounding of the exact path's own f64
-/// arithmetic with the same `T` (about 1e-13 when `‖T‖_F² ≤ 100`).
+/// arithmetic with the same `T` (about 1e-13 within [`WELL_CONDITIONED`]).
 const SLACK: f64 = 1e-10;
 
-/// `‖T‖_F²` up to which exact residuals are taken as `1 − ‖Tᵀ·g‖²` with `T` from the Cholesky
-/// factor of the members' Gram matrix; beyond it, from an orthonormal basis built by CGS2, as
-/// the brute force takes them. Cholesky of a Gram matrix squares the condition number, and a
-/// perturbation `ΔG` moves `gᵀG⁻¹g` by up to `‖T‖₂⁴·‖ΔG‖·‖g‖²`; with `‖ΔG‖ ≈ w·u₆₄` (its
-/// backward error) this keeps the residuals within about 1e-11 of the basis's at w ≤ 10. Two
-/// members with cosine 0.99 give `‖T‖_F² ≈ 100`; typical windows give a few units.
-const WELL_CONDITIONED: f64 = 100.0;
+/// `r·‖T‖_F²` (r basis rows) up to which exact residuals are taken as `1 − ‖Tᵀ·g‖²` with `T`
+/// from the Cholesky factor of the members' Gram matrix; beyond it, from an orthonormal basis
+/// built by CGS2, as the brute force takes them. Cholesky of a Gram matrix squares the condition
+/// number: its backward error `‖ΔG‖ ≲ r·u₆₄` moves `gᵀG⁻¹g` by up to `‖T‖₂⁴·‖ΔG‖·‖g‖²` with
+/// `‖g‖² ≤ r`, so `r·‖T‖_F² ≤ 300` keeps that under `300²·u₆₄ ≈ 1e-11` (a worst case; typical
+/// errors are far smaller). `‖T‖_F² ≥ r` always (the squared singular values of `R` sum to r),
+/// so windows of up to 17 rows can take this path; on the bench's clustered slates a window of
+/// 9 gives `‖T‖_F²` of about 10, and two members with cosine 0.9 add about 10 more.
+const WELL_CONDITIONED: f64 = 300.0;
 
 /// Unit roundoff of f32.
 const U32: f64 = f32::EPSILON as f64 / 2.0;
@@ -397,7 +399,8 @@ impl<S: Simd> Lazy<S> {
     #[inline(always)]
     fn rebuild(&mut self, ws: &mut Workspace) {
         self.cholesky(ws);
-        self.from_basis = self.t.iter().map(|t| t * t).sum::<f64>() > WELL_CONDITIONED;
+        let r = self.rows.len() as f64;
+        self.from_basis = r * self.t.iter().map(|t| t * t).sum::<f64>() > WELL_CONDITIONED;
         if self.from_basis {
             self.factor(ws);
         }
