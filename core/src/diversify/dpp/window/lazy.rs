@@ -211,8 +211,8 @@ struct Lazy<S: Simd> {
     sim: Vec<f64>,
     /// One panel's similarities to the basis rows' members, in row order (screen scratch).
     panel: Vec<S::f32s>,
-    /// Ranks below this (a whole number of blocks) have their rows in the panels, their
-    /// similarities to every member and their screened residual against the current window.
+    /// Ranks below this (a whole number of blocks) have their rows in the panels; their
+    /// similarities and screen are brought up to date block by block ([`Lazy::sync`]).
     covered: usize,
     lambda: f64,
     gain: Gain,
@@ -236,9 +236,9 @@ impl<S: Simd> Lazy<S> {
         }
     }
 
-    /// Extends the covered ranks to include `rank`, a block at a time: copies their unit rows
-    /// into the panels, projects them on every member and screens them against the current
-    /// window. Each rank is covered once, so this costs O(N·w·d) in all at most.
+    /// Extends the covered ranks to include `rank`, a block at a time: copies their unit rows,
+    /// rounded to f32, into the panels, and marks the new blocks as never synced. Each rank is
+    /// covered once, so this costs O(N·d) in all at most.
     #[inline(always)]
     fn cover(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize) {
         let (d, padded, from) = (self.d, self.padded, self.covered);
@@ -281,8 +281,9 @@ impl<S: Simd> Lazy<S> {
         }
     }
 
-    /// Adds the candidate at `rank` to the window (dropping the oldest member when full) and
-    /// rebuilds the basis; blocks are projected on it when a scan reaches them ([`Lazy::sync`]).
+    /// Adds the candidate at `rank` to the window (dropping the oldest member when full), adds
+    /// its row of the Gram matrix, and refactors the window; blocks are projected on it when a
+    /// scan reaches them ([`Lazy::sync`]).
     #[inline(always)]
     fn enter(&mut self, input: &RerankInput, ws: &mut Workspace, rank: usize) {
         let d = self.d;
@@ -338,8 +339,8 @@ impl<S: Simd> Lazy<S> {
                 return None;
             }
         }
-        // Exact: the coordinates straight from the orthonormal basis, as the brute force takes
-        // them.
+        // Exact, in f64: `C = Tᵀ·g` with `g` from f64 dot products, or in an ill-conditioned
+        // window the coordinates straight from the CGS2 basis, as the brute force takes them.
         let d = self.d;
         let emb = input.embeddings().expect("select checked for embeddings");
         let inv = emb.inv_norms()[i];
