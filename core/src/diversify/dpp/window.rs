@@ -484,3 +484,69 @@ pub(super) fn project_all<S: Simd>(simd: S, panel: &[f64], q: &[f64], d: usize, 
         p += 1;
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::diversify::reference;
+    use crate::model::{CandidateInput, Limits, ScoreTransform};
+    use pulp::Scalar;
+
+    /// Rows clustered around a few directions, so windows hold near-dependent members.
+    fn slate(n: usize, d: usize, seed: u64) -> RerankInput {
+        let mut state = seed;
+        let mut next = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let cands = (0..n)
+            .map(|i| CandidateInput {
+                id: format!("c{i}"),
+                score: next(),
+                category: Some(format!("g{}", i % 3)),
+                embedding: Some(
+                    (0..d).map(|t| (next() - 0.5 + if t % 4 == i % 4 { 1.5 } else { 0.0 }) as f32).collect(),
+                ),
+            })
+            .collect();
+        RerankInput::new(cands, ScoreTransform::MinMax, true, &Limits::default()).unwrap()
+    }
+
+    /// Runtime dispatch picks AVX2 + FMA on x86-64-v3 machines (panels of eight candidates in
+    /// the lazy loop); the scalar back end, panels of one, is what other machines run. Both give
+    /// the brute force's picks, for both gains, and so does one workspace reused across shapes
+    /// and back ends (its buffers then hold a larger, stale layout).
+    #[test]
+    fn the_window_loops_agree_on_the_scalar_and_dispatched_back_ends() {
+        let mut reused = Workspace::new();
+        for (case, &(n, d, k, w)) in
+            [(1, 3, 1, 2), (9, 2, 9, 3), (70, 5, 12, 5), (150, 33, 40, 10), (64, 64, 64, 17), (200, 8, 30, 12)]
+                .iter()
+                .enumerate()
+        {
+            let input = slate(n, d, 31 + case as u64);
+            for lambda in [0.05, 0.5, 1.0] {
+                let params = Params::new(k as u64, lambda, &Limits::default())
+                    .and_then(|p| p.with_window(Some(w as u64)))
+                    .unwrap();
+                for (gain, want) in [
+                    (Gain::LogDet, reference::dpp_window(&input, &params, w)),
+                    (Gain::Volume, reference::ssd(&input, &params)),
+                ] {
+                    let what = format!("n={n} d={d} k={k} w={w} lambda={lambda} {gain:?}");
+                    let dispatched = select(&input, &params, &mut Workspace::new(), Some(w), gain);
+                    let scalar = run(Scalar::new(), &input, &params, &mut Workspace::new(), Some(w), gain);
+                    assert_eq!(dispatched.indices, want, "dispatched: {what}");
+                    assert_eq!(scalar.indices, want, "scalar: {what}");
+                    assert_eq!(scalar.exhausted_at, dispatched.exhausted_at, "{what}");
+                    let first = select(&input, &params, &mut reused, Some(w), gain);
+                    let second = run(Scalar::new(), &input, &params, &mut reused, Some(w), gain);
+                    assert_eq!(first.indices, want, "reused, dispatched: {what}");
+                    assert_eq!(second.indices, want, "reused, scalar: {what}");
+                }
+            }
+        }
+    }
+}
