@@ -193,6 +193,12 @@ mod tests {
     use pulp::Scalar;
 
     fn slate(n: usize, d: usize, seed: u64) -> RerankInput {
+        slate_with(n, d, seed, |_, _| 0.0)
+    }
+
+    /// `n` candidates in three categories, scores and row values from an xorshift stream
+    /// (values uniform in ±0.5), `bump(i, t)` added to coordinate t of candidate i's row.
+    pub(super) fn slate_with(n: usize, d: usize, seed: u64, bump: impl Fn(usize, usize) -> f64) -> RerankInput {
         let mut state = seed;
         let mut next = move || {
             state ^= state << 13;
@@ -205,7 +211,7 @@ mod tests {
                 id: format!("c{i}"),
                 score: next(),
                 category: Some(format!("g{}", i % 3)),
-                embedding: Some((0..d).map(|_| (next() - 0.5) as f32).collect()),
+                embedding: Some((0..d).map(|t| (next() - 0.5 + bump(i, t)) as f32).collect()),
             })
             .collect();
         RerankInput::new(cands, ScoreTransform::MinMax, true, &Limits::default()).unwrap()

@@ -489,29 +489,12 @@ pub(super) fn project_all<S: Simd>(simd: S, panel: &[f64], q: &[f64], d: usize, 
 mod tests {
     use super::*;
     use crate::diversify::reference;
-    use crate::model::{CandidateInput, Limits, ScoreTransform};
+    use crate::model::Limits;
     use pulp::Scalar;
 
-    /// Rows clustered around a few directions, so windows hold near-dependent members.
+    /// Rows clustered around four directions, so windows hold near-dependent members.
     fn slate(n: usize, d: usize, seed: u64) -> RerankInput {
-        let mut state = seed;
-        let mut next = move || {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            (state >> 11) as f64 / (1u64 << 53) as f64
-        };
-        let cands = (0..n)
-            .map(|i| CandidateInput {
-                id: format!("c{i}"),
-                score: next(),
-                category: Some(format!("g{}", i % 3)),
-                embedding: Some(
-                    (0..d).map(|t| (next() - 0.5 + if t % 4 == i % 4 { 1.5 } else { 0.0 }) as f32).collect(),
-                ),
-            })
-            .collect();
-        RerankInput::new(cands, ScoreTransform::MinMax, true, &Limits::default()).unwrap()
+        super::super::tests::slate_with(n, d, seed, |i, t| if t % 4 == i % 4 { 1.5 } else { 0.0 })
     }
 
     /// Runtime dispatch picks AVX2 + FMA on x86-64-v3 machines (panels of eight candidates in
