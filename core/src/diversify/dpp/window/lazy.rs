@@ -52,8 +52,8 @@
 //! a worse window takes its residuals from an orthonormal basis built by CGS2 over the members'
 //! rows, exactly as the brute force takes them, with that basis's `T` for the screen. The
 //! screen's error grows with `‖T‖`; [`Lazy::rebuild`] derives `E` from `T`'s column sums, and a
-//! window so ill-conditioned that `E` would pass 1 screens nothing (every candidate reached is
-//! evaluated exactly). Duplicated candidates compute identical values and tie.
+//! window so ill-conditioned that `E` would pass 1.5 screens nothing (every candidate reached
+//! is evaluated exactly). Duplicated candidates compute identical values and tie.
 
 use std::collections::VecDeque;
 
