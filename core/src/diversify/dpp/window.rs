@@ -70,6 +70,23 @@ pub(crate) enum Gain {
     Volume,
 }
 
+impl Gain {
+    /// The gain of a candidate with normalised score `s` and residual `d2`; `None` where
+    /// windowed DPP's `EPSILON` rule excludes it.
+    #[inline(always)]
+    pub(super) fn value(self, lambda: f64, s: f64, d2: f64) -> Option<f64> {
+        let base = (1.0 - lambda) * s;
+        match self {
+            Self::LogDet if d2 < EPSILON => None,
+            Self::LogDet => Some(base + lambda * d2.ln()),
+            // In the span to working precision: no volume (the rounding left of a zero
+            // residual, ±1e-16, must not rank candidates by its square root).
+            Self::Volume if d2 < EPSILON => Some(base),
+            Self::Volume => Some(base + lambda * d2.sqrt()),
+        }
+    }
+}
+
 /// Runs the windowed greedy. The caller has checked `lambda > 0`, `N > 0` and embeddings;
 /// `window` is `w` (members are the last `w − 1` picks), `None` for all picks.
 pub(crate) fn select(
@@ -260,14 +277,7 @@ fn best_gain(
         if best.is_some_and(|(b, _, _)| surely_below(gain, lambda, s[i], d2, b)) {
             continue;
         }
-        let value = match gain {
-            Gain::LogDet if d2 < EPSILON => continue,
-            Gain::LogDet => (1.0 - lambda) * s[i] + lambda * d2.ln(),
-            // In the span to working precision: no volume (the rounding left of a zero
-            // residual, ±1e-16, must not rank candidates by its square root).
-            Gain::Volume if d2 < EPSILON => (1.0 - lambda) * s[i],
-            Gain::Volume => (1.0 - lambda) * s[i] + lambda * d2.sqrt(),
-        };
+        let Some(value) = gain.value(lambda, s[i], d2) else { continue };
         // Ties go to the lower index, whatever the scan order.
         let better = |(b, bi, _): (f64, usize, usize)| match value.partial_cmp(&b) {
             Some(std::cmp::Ordering::Greater) => true,

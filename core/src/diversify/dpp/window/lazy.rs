@@ -223,19 +223,6 @@ struct Lazy<S: Simd> {
 }
 
 impl<S: Simd> Lazy<S> {
-    /// The gain a residual gives a candidate of normalised score `s` (the parent module's
-    /// `Gain`), `None` where windowed DPP's `EPSILON` rule excludes it.
-    #[inline(always)]
-    fn value(&self, s: f64, d2: f64) -> Option<f64> {
-        let base = (1.0 - self.lambda) * s;
-        match self.gain {
-            Gain::LogDet if d2 < EPSILON => None,
-            Gain::LogDet => Some(base + self.lambda * d2.ln()),
-            Gain::Volume if d2 < EPSILON => Some(base),
-            Gain::Volume => Some(base + self.lambda * d2.sqrt()),
-        }
-    }
-
     /// Extends the covered ranks to include `rank`, a block at a time: copies their unit rows,
     /// rounded to f32, into the panels, and marks the new blocks as never synced. Each rank is
     /// covered once, so this costs O(N·d) in all at most.
@@ -249,7 +236,7 @@ impl<S: Simd> Lazy<S> {
         filled[2 * from / block..2 * to / block].fill(0);
         for r in from..to {
             let (p, l) = (r / lanes, r % lanes);
-            let row = order.get(r).map(|&i| (&emb.as_slice()[i * d..(i + 1) * d], emb.inv_norms()[i]));
+            let row = order.get(r).map(|&i| (emb.row(i), emb.inv_norms()[i]));
             for j in 0..d {
                 narrow[(p * d + j) * lanes + l] = row.map_or(0.0, |(x, inv)| (f64::from(x[j]) * inv) as f32);
             }
@@ -296,7 +283,7 @@ impl<S: Simd> Lazy<S> {
         self.members.push_back(slot);
         let i = ws.order[rank];
         let inv = emb.inv_norms()[i];
-        let row = &emb.as_slice()[i * d..(i + 1) * d];
+        let row = emb.row(i);
         for ((x, x32), &v) in self.member_rows[slot * d..(slot + 1) * d]
             .iter_mut()
             .zip(&mut self.member32[slot * d..(slot + 1) * d])
@@ -334,7 +321,7 @@ impl<S: Simd> Lazy<S> {
             let bound = (f64::from(ws.sims[self.capacity * self.padded + rank]) + self.slack).min(1.0);
             let s = input.normalized()[i];
             if surely_below(self.gain, self.lambda, s, bound, floor)
-                || self.value(s, bound).is_none_or(|v| v < floor)
+                || self.gain.value(self.lambda, s, bound).is_none_or(|v| v < floor)
             {
                 return None;
             }
@@ -345,7 +332,7 @@ impl<S: Simd> Lazy<S> {
         let emb = input.embeddings().expect("select checked for embeddings");
         let inv = emb.inv_norms()[i];
         self.g.clear();
-        self.g.extend(emb.as_slice()[i * d..(i + 1) * d].iter().map(|&x| f64::from(x) * inv));
+        self.g.extend(emb.row(i).iter().map(|&x| f64::from(x) * inv));
         let mut kept = 0.0;
         if self.from_basis {
             for q in ws.basis.chunks_exact(d).take(self.rows.len()) {
